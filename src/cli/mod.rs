@@ -1,0 +1,65 @@
+//! The `tamis` command line: argument parsing, dispatch, and exit codes.
+//!
+//! Exit codes (documented in `--help` and the README):
+//! 0 success; 1 an operational failure (I/O on output, internal error); 2 bad input (a
+//! file that is not mail, unreadable input, invalid arguments).
+
+mod corpus;
+mod extract;
+
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+/// Exit code for success.
+pub const EXIT_OK: u8 = 0;
+/// Exit code for an operational failure.
+pub const EXIT_FAILURE: u8 = 1;
+/// Exit code for bad input: unreadable files, files that are not mail, invalid arguments.
+pub const EXIT_BAD_INPUT: u8 = 2;
+
+/// tamis — an inline mail filter for relay operators.
+///
+/// It reads each message the way a person would see it, turns the words into hashed
+/// n-gram features and scores them with a linear model trained on your own mail.
+///
+/// Exit codes: 0 success, 1 operational failure, 2 bad input (a file that is not mail,
+/// an unreadable file, invalid arguments).
+#[derive(Parser, Debug)]
+#[command(name = "tamis", version, about, long_about)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+enum Command {
+    /// Show what the filter sees in messages: tokens per field, URL hosts, signals, features.
+    Extract(extract::ExtractArgs),
+    /// Write the invented demonstration corpus (labelled junk and legitimate mail).
+    Corpus(corpus::CorpusArgs),
+}
+
+/// Parses the process arguments, runs the subcommand and maps its outcome to an exit code.
+pub fn main() -> ExitCode {
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(e) => {
+            // clap prints help and version to stdout with success, usage errors to stderr.
+            let code = if e.use_stderr() { EXIT_BAD_INPUT } else { EXIT_OK };
+            let _ = e.print();
+            return ExitCode::from(code);
+        }
+    };
+    let outcome = match cli.command {
+        Command::Extract(args) => extract::run(&args),
+        Command::Corpus(args) => corpus::run(&args).map(|()| EXIT_OK),
+    };
+    match outcome {
+        Ok(code) => ExitCode::from(code),
+        Err(e) => {
+            eprintln!("tamis: {e:#}");
+            ExitCode::from(EXIT_FAILURE)
+        }
+    }
+}

@@ -1,0 +1,1 @@
+//! placeholder: demo corpus (being written)

@@ -1,0 +1,27 @@
+//! tamis: an inline mail filter for the people who run mail relays.
+//!
+//! Components, in the order a message flows through them:
+//!
+//! 1. [`mail`] — raw RFC 5322 bytes to the text a reader would see: MIME walk, transfer
+//!    encodings, charsets, HTML rendered to text, URLs, header signals.
+//! 2. [`text`] — Unicode normalization and tokenization: NFKC, case folding, format
+//!    characters removed, look-alike letters mapped to a common skeleton, spaced-out letters
+//!    rejoined, unspaced scripts split into character n-grams.
+//! 3. [`features`] — word n-grams per field namespace, hashed with MurmurHash3 into a sparse
+//!    vector with sublinear term frequency and L2 normalisation, described by a versioned
+//!    [`features::FeatureSpec`].
+//! 4. [`analyze`] — the one pipeline that runs `mail → text → features`, shared by training
+//!    and scoring so both see exactly the same vector.
+//!
+//! [`demo`] generates the invented demonstration corpus used by examples and benchmarks.
+#![forbid(unsafe_code)]
+
+pub mod analyze;
+pub mod cli;
+pub mod demo;
+pub mod features;
+pub mod label;
+pub mod mail;
+pub mod text;
+
+pub use label::Label;

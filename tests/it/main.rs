@@ -1,0 +1,10 @@
+//! Integration tests, one module per area.
+mod cli_extract;
+mod cpython_email;
+mod demo_corpus;
+mod html;
+mod invariance;
+mod mime;
+mod murmur;
+mod python;
+mod text_normalize;
