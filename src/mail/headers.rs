@@ -32,6 +32,15 @@ pub fn parse_section(raw: &[u8]) -> HeaderSection<'_> {
             ix += 2;
             break;
         }
+        // A line that is neither a field nor a continuation ends the header section: some
+        // senders omit the blank line before the body (RFC 5322 §2.1 requires it).
+        let line_end = memchr::memchr(b'\n', rest).unwrap_or(rest.len());
+        let line = &rest[..line_end];
+        let is_continuation = line.first().is_some_and(|&b| b == b' ' || b == b'\t');
+        if !is_continuation && memchr::memchr(b':', line).is_none() {
+            malformed = true;
+            break;
+        }
         match parse_header(rest) {
             Ok((field, used)) if used > 0 => {
                 fields.push(field);

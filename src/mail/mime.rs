@@ -65,7 +65,27 @@ struct Pending<'a> {
 
 fn content_type(fields: &[MailHeader<'_>], in_digest: bool) -> ParsedContentType {
     match fields.get_first_value("Content-Type") {
-        Some(value) => parse_content_type(&value),
+        Some(value) => {
+            let mut ctype = parse_content_type(&value);
+            // RFC 2045 §5.2: a syntactically invalid type (no subtype) means text/plain.
+            if !ctype.mimetype.contains('/') {
+                ctype.mimetype = "text/plain".to_string();
+            }
+            // RFC 2231 §4: `name*=charset'lang'value` where the charset label was not one
+            // the header parser knew; boundaries and charsets are ASCII, so decode here.
+            for name in ["boundary", "charset"] {
+                if !ctype.params.contains_key(name)
+                    && let Some(value) = ctype.params.get(&format!("{name}*"))
+                {
+                    let decoded = rfc2231_value(value);
+                    if name == "charset" {
+                        ctype.charset = decoded.clone();
+                    }
+                    ctype.params.insert(name.to_string(), decoded);
+                }
+            }
+            ctype
+        }
         // RFC 2046 §5.1.5: in a digest the default type is message/rfc822.
         None if in_digest => ParsedContentType {
             mimetype: "message/rfc822".to_string(),
@@ -73,6 +93,28 @@ fn content_type(fields: &[MailHeader<'_>], in_digest: bool) -> ParsedContentType
         },
         None => ParsedContentType::default(),
     }
+}
+
+/// The value part of an RFC 2231 extended parameter (`charset'lang'percent-encoded`).
+fn rfc2231_value(raw: &str) -> String {
+    let encoded = raw.splitn(3, '\'').nth(2).unwrap_or(raw);
+    let bytes = encoded.as_bytes();
+    let mut out = Vec::with_capacity(bytes.len());
+    let mut i = 0;
+    while i < bytes.len() {
+        let hex = |b: Option<&u8>| b.and_then(|b| (*b as char).to_digit(16));
+        match (bytes[i], hex(bytes.get(i + 1)), hex(bytes.get(i + 2))) {
+            (b'%', Some(hi), Some(lo)) => {
+                out.push((hi * 16 + lo) as u8);
+                i += 3;
+            }
+            (b, _, _) => {
+                out.push(b);
+                i += 1;
+            }
+        }
+    }
+    String::from_utf8_lossy(&out).into_owned()
 }
 
 fn is_attachment(fields: &[MailHeader<'_>]) -> bool {
@@ -133,8 +175,9 @@ pub fn walk<'a>(
             if !closed {
                 signals.add(Signal::MultipartUnclosed);
             }
-            if parts.is_empty() {
-                // No delimiter at all: read the body as text rather than lose it.
+            if parts.is_empty() && !closed {
+                // No delimiter at all: read the body as text rather than lose it, so junk
+                // cannot hide behind a broken boundary.
                 let leaf = Leaf {
                     mimetype: "text/plain",
                     charset: "us-ascii",
@@ -167,7 +210,8 @@ pub fn walk<'a>(
             continue;
         }
 
-        if ctype.mimetype == "message/rfc822" && !is_attachment(&section.fields) {
+        let read_enclosed = selection == Selection::Every || !is_attachment(&section.fields);
+        if ctype.mimetype == "message/rfc822" && read_enclosed {
             if entity.depth >= limits.max_depth {
                 signals.add(Signal::TooDeep);
                 continue;
@@ -185,8 +229,16 @@ pub fn walk<'a>(
             .fields
             .get_first_value("Content-Transfer-Encoding")
             .map_or(TransferEncoding::Identity, |v| TransferEncoding::from_header(&v));
+        // A multipart without a boundary cannot be split: read it as text (RFC 2046 makes
+        // the parameter mandatory, so this is malformed mail, often deliberately).
+        let mimetype = if ctype.mimetype.starts_with("multipart/") {
+            signals.add(Signal::MultipartUnclosed);
+            "text/plain"
+        } else {
+            &ctype.mimetype
+        };
         let leaf = Leaf {
-            mimetype: &ctype.mimetype,
+            mimetype,
             charset: &ctype.charset,
             is_attachment: is_attachment(&section.fields),
             transfer,

@@ -3,7 +3,7 @@ mod cli_extract;
 mod cpython_email;
 mod demo_corpus;
 mod html;
-mod invariance;
+pub mod invariance;
 mod mime;
 mod murmur;
 mod python;

@@ -1,1 +1,1 @@
-//! placeholder, being written
+//! Being written.
