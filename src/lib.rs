@@ -22,6 +22,8 @@ pub mod demo;
 pub mod features;
 pub mod label;
 pub mod mail;
+pub mod model;
 pub mod text;
+pub mod train;
 
 pub use label::Label;

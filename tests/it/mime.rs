@@ -210,3 +210,48 @@ mod hostile {
         bounded(&e);
     }
 }
+
+mod property {
+    use proptest::prelude::*;
+    use tamis::analyze::Analyzer;
+
+    /// Pieces of MIME structure, so random messages reach deep into the walker rather than
+    /// failing at the first line.
+    fn mime_piece() -> impl Strategy<Value = Vec<u8>> {
+        prop_oneof![
+            Just(b"Content-Type: multipart/mixed; boundary=q\r\n\r\n".to_vec()),
+            Just(b"Content-Type: multipart/alternative; boundary=\"q\"\r\n".to_vec()),
+            Just(b"--q\r\n".to_vec()),
+            Just(b"--q--\r\n".to_vec()),
+            Just(b"Content-Type: text/html; charset=koi8-r\r\n\r\n".to_vec()),
+            Just(b"Content-Type: message/rfc822\r\n\r\n".to_vec()),
+            Just(b"Content-Transfer-Encoding: base64\r\n\r\n".to_vec()),
+            Just(b"Content-Transfer-Encoding: quoted-printable\r\n\r\n=\r\n=4".to_vec()),
+            Just(b"<div style=\"display:none\"><a href='http://x.example'>".to_vec()),
+            Just(b"Subject: =?utf-8?b?w6k=?= =?x?q?a?=\r\n".to_vec()),
+            proptest::collection::vec(any::<u8>(), 0..64),
+        ]
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig::with_cases(512))]
+
+        #[test]
+        fn arbitrary_messages_never_panic(pieces in proptest::collection::vec(mime_piece(), 0..24)) {
+            let mut raw = b"Subject: p\r\n".to_vec();
+            for piece in pieces {
+                raw.extend_from_slice(&piece);
+            }
+            let mut analyzer = Analyzer::default();
+            let vector = analyzer.vectorize(&raw).expect("starts with a header");
+            let norm = vector.l2_norm();
+            prop_assert!(vector.is_empty() || (norm - 1.0).abs() < 1e-4);
+        }
+
+        #[test]
+        fn arbitrary_bytes_never_panic(raw in proptest::collection::vec(any::<u8>(), 0..2048)) {
+            let mut analyzer = Analyzer::default();
+            let _ = analyzer.vectorize(&raw);
+        }
+    }
+}

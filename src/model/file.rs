@@ -1,0 +1,329 @@
+//! The model file: a small binary container, specified in `proto/MODEL_FORMAT.md`.
+//!
+//! ```text
+//! offset  size  field
+//! 0       8     magic "TAMISMDL"
+//! 8       2     format version (u16 LE) = 1
+//! 10      2     reserved, 0
+//! 12      4     header length H (u32 LE), at most 1 MiB
+//! 16      H     header: UTF-8 JSON {feature_spec, calibration, summary}
+//! 16+H    4     weight count N (u32 LE) = 2^hash_bits
+//! 20+H    4N    weights, f32 LE
+//! 20+H+4N 8     bias, f64 LE
+//! 28+H+4N 4     CRC-32 (IEEE) of every preceding byte, u32 LE
+//! ```
+//!
+//! Weights are raw little-endian floats, so loading a 2^22-weight model is a copy, not a
+//! parse. Every way a file can be wrong — foreign, truncated, corrupted, from a newer
+//! format, or made with a feature spec this binary cannot reproduce — is its own error.
+
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use super::{Calibration, LinearModel, ModelError, TrainingSummary};
+use crate::features::FeatureSpec;
+
+/// First bytes of every model file.
+pub const MAGIC: &[u8; 8] = b"TAMISMDL";
+/// The format version this binary writes and reads.
+pub const FORMAT_VERSION: u16 = 1;
+/// Largest accepted header.
+pub const MAX_HEADER_BYTES: usize = 1 << 20;
+
+/// Why a model file was refused.
+#[derive(Debug, thiserror::Error)]
+pub enum ModelFileError {
+    /// The file cannot be read or written.
+    #[error("{path}: {source}")]
+    Io {
+        /// The file.
+        path: PathBuf,
+        /// The I/O error.
+        source: std::io::Error,
+    },
+    /// The file does not start with the model magic.
+    #[error("{path}: not a tamis model file (it does not start with the TAMISMDL signature)")]
+    Foreign {
+        /// The file.
+        path: PathBuf,
+    },
+    /// The file was written by a newer (or unknown) format version.
+    #[error("{path}: model format version {found} is not supported (this binary reads version {FORMAT_VERSION}); use the tamis release that wrote it or retrain")]
+    Version {
+        /// The file.
+        path: PathBuf,
+        /// Version found.
+        found: u16,
+    },
+    /// The file ends before a field it declares.
+    #[error("{path}: truncated: {field} needs bytes up to offset {needed} but the file has {len} bytes")]
+    Truncated {
+        /// The file.
+        path: PathBuf,
+        /// The field that is cut short.
+        field: &'static str,
+        /// Bytes required.
+        needed: usize,
+        /// Bytes present.
+        len: usize,
+    },
+    /// The checksum does not match: the file was damaged after it was written.
+    #[error("{path}: corrupted: checksum {found:#010x} does not match contents {computed:#010x}")]
+    Checksum {
+        /// The file.
+        path: PathBuf,
+        /// Stored checksum.
+        found: u32,
+        /// Checksum of the contents.
+        computed: u32,
+    },
+    /// The header is not the JSON this format defines.
+    #[error("{path}: damaged header: {reason}")]
+    Header {
+        /// The file.
+        path: PathBuf,
+        /// What is wrong.
+        reason: String,
+    },
+    /// The parts are individually valid but do not fit together, or the feature spec is not
+    /// reproducible by this binary.
+    #[error("{path}: incompatible model: {source}")]
+    Incompatible {
+        /// The file.
+        path: PathBuf,
+        /// Why.
+        source: ModelError,
+    },
+}
+
+#[derive(Serialize, Deserialize)]
+struct Header {
+    feature_spec: FeatureSpec,
+    calibration: Option<Calibration>,
+    summary: TrainingSummary,
+}
+
+/// Serializes `model` into the file format.
+pub fn encode_model(model: &LinearModel) -> Vec<u8> {
+    let header = Header {
+        feature_spec: model.spec().clone(),
+        calibration: model.calibration(),
+        summary: model.summary().clone(),
+    };
+    // Serializing plain structs of numbers and strings to JSON cannot fail.
+    let header = serde_json::to_vec(&header).unwrap_or_default();
+    let weights = model.weights();
+    let mut out = Vec::with_capacity(32 + header.len() + 4 * weights.len());
+    out.extend_from_slice(MAGIC);
+    out.extend_from_slice(&FORMAT_VERSION.to_le_bytes());
+    out.extend_from_slice(&0u16.to_le_bytes());
+    out.extend_from_slice(&(header.len() as u32).to_le_bytes());
+    out.extend_from_slice(&header);
+    out.extend_from_slice(&(weights.len() as u32).to_le_bytes());
+    for w in weights {
+        out.extend_from_slice(&w.to_le_bytes());
+    }
+    out.extend_from_slice(&model.bias().to_le_bytes());
+    let crc = crc32fast::hash(&out);
+    out.extend_from_slice(&crc.to_le_bytes());
+    out
+}
+
+/// Writes `model` to `path` atomically: a temporary file beside it, then a rename, so a
+/// daemon reloading the path never reads half a model.
+pub fn save_model(model: &LinearModel, path: &Path) -> Result<(), ModelFileError> {
+    let io = |source| ModelFileError::Io {
+        path: path.to_path_buf(),
+        source,
+    };
+    let mut tmp = path.as_os_str().to_owned();
+    tmp.push(".tmp");
+    let tmp = PathBuf::from(tmp);
+    std::fs::write(&tmp, encode_model(model)).map_err(io)?;
+    std::fs::rename(&tmp, path).map_err(io)
+}
+
+/// Reads and checks the model at `path`.
+pub fn load_model(path: &Path) -> Result<LinearModel, ModelFileError> {
+    let bytes = std::fs::read(path).map_err(|source| ModelFileError::Io {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    decode_model(&bytes, path)
+}
+
+/// Decodes a model from `bytes`; `path` names the source in errors.
+pub fn decode_model(bytes: &[u8], path: &Path) -> Result<LinearModel, ModelFileError> {
+    let p = || path.to_path_buf();
+    let len = bytes.len();
+    let need = |field: &'static str, needed: usize| -> Result<(), ModelFileError> {
+        if needed > len {
+            Err(ModelFileError::Truncated {
+                path: p(),
+                field,
+                needed,
+                len,
+            })
+        } else {
+            Ok(())
+        }
+    };
+    if !bytes.starts_with(MAGIC) {
+        // A prefix of the magic is a truncated model; anything else is someone else's file.
+        return if len < MAGIC.len() && MAGIC.starts_with(bytes) {
+            Err(ModelFileError::Truncated {
+                path: p(),
+                field: "signature",
+                needed: MAGIC.len(),
+                len,
+            })
+        } else {
+            Err(ModelFileError::Foreign { path: p() })
+        };
+    }
+    need("version", 16)?;
+    let version = u16::from_le_bytes([bytes[8], bytes[9]]);
+    if version != FORMAT_VERSION {
+        return Err(ModelFileError::Version {
+            path: p(),
+            found: version,
+        });
+    }
+    let header_len = u32::from_le_bytes([bytes[12], bytes[13], bytes[14], bytes[15]]) as usize;
+    if header_len > MAX_HEADER_BYTES {
+        return Err(ModelFileError::Header {
+            path: p(),
+            reason: format!("declared header length {header_len} exceeds {MAX_HEADER_BYTES}"),
+        });
+    }
+    let header_end = 16 + header_len;
+    need("header", header_end + 4)?;
+    let count = u32::from_le_bytes([
+        bytes[header_end],
+        bytes[header_end + 1],
+        bytes[header_end + 2],
+        bytes[header_end + 3],
+    ]) as usize;
+    let weights_start = header_end + 4;
+    let weights_end = weights_start.saturating_add(count.saturating_mul(4));
+    need("weights", weights_end)?;
+    need("bias", weights_end + 8)?;
+    need("checksum", weights_end + 12)?;
+    let body_end = weights_end + 8;
+    if len > body_end + 4 {
+        return Err(ModelFileError::Header {
+            path: p(),
+            reason: format!("{} unexpected bytes after the checksum", len - body_end - 4),
+        });
+    }
+    let stored = u32::from_le_bytes([
+        bytes[body_end],
+        bytes[body_end + 1],
+        bytes[body_end + 2],
+        bytes[body_end + 3],
+    ]);
+    let computed = crc32fast::hash(&bytes[..body_end]);
+    if stored != computed {
+        return Err(ModelFileError::Checksum {
+            path: p(),
+            found: stored,
+            computed,
+        });
+    }
+    let header: Header = serde_json::from_slice(&bytes[16..header_end]).map_err(|e| {
+        ModelFileError::Header {
+            path: p(),
+            reason: e.to_string(),
+        }
+    })?;
+    let weights: Vec<f32> = bytes[weights_start..weights_end]
+        .chunks_exact(4)
+        .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]))
+        .collect();
+    let mut bias_bytes = [0u8; 8];
+    bias_bytes.copy_from_slice(&bytes[weights_end..body_end]);
+    let bias = f64::from_le_bytes(bias_bytes);
+    LinearModel::new(header.feature_spec, weights, bias, header.calibration, header.summary)
+        .map_err(|source| ModelFileError::Incompatible { path: p(), source })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn model() -> LinearModel {
+        let spec = FeatureSpec {
+            hash_bits: 10,
+            ..FeatureSpec::default()
+        };
+        let weights = (0..1024).map(|i| (i as f32 - 512.0) / 100.0).collect();
+        LinearModel::new(
+            spec,
+            weights,
+            -0.25,
+            Some(Calibration { a: -2.0, b: 0.1 }),
+            TrainingSummary {
+                n_spam: 3,
+                n_ham: 9,
+                ..TrainingSummary::default()
+            },
+        )
+        .expect("valid model")
+    }
+
+    fn decode(bytes: &[u8]) -> Result<LinearModel, ModelFileError> {
+        decode_model(bytes, Path::new("m.tamis"))
+    }
+
+    #[test]
+    fn round_trip_is_exact() {
+        let m = model();
+        assert_eq!(decode(&encode_model(&m)).expect("decodes"), m);
+    }
+
+    #[test]
+    fn every_truncation_is_refused_as_truncated() {
+        let bytes = encode_model(&model());
+        for cut in 0..bytes.len() {
+            match decode(&bytes[..cut]) {
+                Err(ModelFileError::Truncated { .. }) => {}
+                other => panic!("cut at {cut}: {other:?}"),
+            }
+        }
+    }
+
+    #[test]
+    fn damaged_foreign_and_newer_files_are_refused() {
+        let bytes = encode_model(&model());
+        let mut flipped = bytes.clone();
+        let middle = flipped.len() / 2;
+        flipped[middle] ^= 0x40;
+        assert!(matches!(decode(&flipped), Err(ModelFileError::Checksum { .. })));
+        assert!(matches!(decode(b"GIF89a......................"), Err(ModelFileError::Foreign { .. })));
+        let mut newer = bytes.clone();
+        newer[8] = 9;
+        assert!(matches!(decode(&newer), Err(ModelFileError::Version { found: 9, .. })));
+    }
+
+    #[test]
+    fn unsupported_feature_spec_is_refused() {
+        let m = model();
+        let bytes = encode_model(&m);
+        // Rewrite the spec version inside the JSON header and fix up the checksum, as a
+        // model written by a future release would look.
+        let text = String::from_utf8_lossy(&bytes).into_owned();
+        let at = text.find("\"version\":1").expect("spec version in header");
+        let mut edited = bytes.clone();
+        edited[at + 10] = b'7';
+        let body_end = edited.len() - 4;
+        let crc = crc32fast::hash(&edited[..body_end]);
+        edited[body_end..].copy_from_slice(&crc.to_le_bytes());
+        match decode(&edited) {
+            Err(ModelFileError::Incompatible { source, .. }) => {
+                assert!(source.to_string().contains("feature spec version 7"), "{source}");
+            }
+            other => panic!("{other:?}"),
+        }
+    }
+}

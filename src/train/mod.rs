@@ -1,0 +1,4 @@
+//! Learning from labelled mail: corpus readers, the dataset, solvers, evaluation,
+//! calibration and threshold tuning.
+
+pub mod corpus;
