@@ -2,3 +2,4 @@
 //! calibration and threshold tuning.
 
 pub mod corpus;
+pub mod vectorize;
