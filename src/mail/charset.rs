@@ -80,7 +80,10 @@ mod tests {
         // Byte values from the charsets' published code charts (ISO 8859-1, KOI8-R, ISO-2022-JP RFC 1468).
         assert_eq!(dec("iso-8859-1", b"caf\xe9").0, "café");
         assert_eq!(dec("KOI8-R", b"\xd0\xd2\xc9\xd7\xc5\xd4").0, "привет");
-        assert_eq!(dec("iso-2022-jp", b"\x1b$B$3$s$K$A$O\x1b(B").0, "こんにちは");
+        assert_eq!(
+            dec("iso-2022-jp", b"\x1b$B$3$s$K$A$O\x1b(B").0,
+            "こんにちは"
+        );
         assert_eq!(dec("windows-1251", b"\xef\xf0\xe8").0, "при");
     }
 

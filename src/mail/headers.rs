@@ -103,7 +103,9 @@ pub fn auth_results(fields: &[MailHeader<'_>]) -> Vec<String> {
             .to_ascii_lowercase();
         let method_ok = !method.is_empty()
             && method.len() <= 16
-            && method.chars().all(|c| c.is_ascii_alphanumeric() || c == '-');
+            && method
+                .chars()
+                .all(|c| c.is_ascii_alphanumeric() || c == '-');
         if method_ok && !result.is_empty() && result.len() <= 16 {
             tokens.push(format!("{method}={result}"));
         }
@@ -137,7 +139,10 @@ mod tests {
         let raw = b" leading continuation\nSubject: hi\r\n\r\nbody";
         let section = parse_section(raw);
         assert!(section.malformed);
-        assert_eq!(first_value(&section.fields, "subject").as_deref(), Some("hi"));
+        assert_eq!(
+            first_value(&section.fields, "subject").as_deref(),
+            Some("hi")
+        );
         assert_eq!(&raw[section.body_start..], b"body");
     }
 
@@ -145,7 +150,10 @@ mod tests {
     fn reads_sender_domain_and_auth_results() {
         let raw = b"From: \"Ada Quill\" <ada@Mail.Example.ORG>\nAuthentication-Results: mx.example.net; spf=pass smtp.mailfrom=example.org; dkim=fail (bad sig) header.d=example.org; dmarc=none\n\n";
         let section = parse_section(raw);
-        assert_eq!(sender_domain(&section.fields).as_deref(), Some("mail.example.org"));
+        assert_eq!(
+            sender_domain(&section.fields).as_deref(),
+            Some("mail.example.org")
+        );
         assert_eq!(
             auth_results(&section.fields),
             vec!["spf=pass", "dkim=fail", "dmarc=none"]
@@ -155,7 +163,9 @@ mod tests {
     #[test]
     fn sniffs_mail() {
         assert!(looks_like_mail(b"Subject: x\n\nbody"));
-        assert!(looks_like_mail(b"From alice@example.org Thu Jan  1 00:00:00 2026\n"));
+        assert!(looks_like_mail(
+            b"From alice@example.org Thu Jan  1 00:00:00 2026\n"
+        ));
         assert!(!looks_like_mail(b"\x89PNG\r\n\x1a\n"));
         assert!(!looks_like_mail(b""));
         assert!(!looks_like_mail(b"just some words: here"));

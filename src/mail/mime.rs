@@ -228,7 +228,9 @@ pub fn walk<'a>(
         let transfer = section
             .fields
             .get_first_value("Content-Transfer-Encoding")
-            .map_or(TransferEncoding::Identity, |v| TransferEncoding::from_header(&v));
+            .map_or(TransferEncoding::Identity, |v| {
+                TransferEncoding::from_header(&v)
+            });
         // A multipart without a boundary cannot be split: read it as text (RFC 2046 makes
         // the parameter mandatory, so this is malformed mail, often deliberately).
         let mimetype = if ctype.mimetype.starts_with("multipart/") {
@@ -259,7 +261,10 @@ fn choose_alternative<'a>(parts: &[&'a [u8]]) -> (&'a [u8], bool) {
         .map(|p| content_type(&parse_section(p).fields, false).mimetype)
         .collect();
     let pick = |pred: &dyn Fn(&str) -> bool| {
-        types.iter().rposition(|t| pred(t)).and_then(|i| parts.get(i).copied())
+        types
+            .iter()
+            .rposition(|t| pred(t))
+            .and_then(|i| parts.get(i).copied())
     };
     let choice = pick(&|t| t == "text/html" || t.starts_with("multipart/"))
         .or_else(|| pick(&|t| t == "text/plain"))
@@ -319,10 +324,14 @@ mod tests {
 
     #[test]
     fn splits_parts_and_ignores_longer_boundaries() {
-        let body = b"preamble\r\n--b\r\nA: 1\r\n\r\none\r\n--bx\r\n--b\r\n\r\ntwo\r\n--b--\r\nepilogue";
+        let body =
+            b"preamble\r\n--b\r\nA: 1\r\n\r\none\r\n--bx\r\n--b\r\n\r\ntwo\r\n--b--\r\nepilogue";
         let (parts, closed) = split_multipart(body, b"b");
         assert!(closed);
-        assert_eq!(parts, vec![&b"A: 1\r\n\r\none\r\n--bx"[..], &b"\r\ntwo"[..]]);
+        assert_eq!(
+            parts,
+            vec![&b"A: 1\r\n\r\none\r\n--bx"[..], &b"\r\ntwo"[..]]
+        );
     }
 
     #[test]

@@ -149,52 +149,60 @@ impl Extractor {
         let mut saw_html = false;
         let mut url_count = 0usize;
         let mut signals = std::mem::take(&mut out.signals);
-        mime::walk(raw, &top, limits, Selection::Reader, &mut signals, |leaf, signals| {
-            saw_plain |= leaf.has_plain_alternative;
-            let kind = text_kind(leaf);
-            let Some(kind) = kind else {
-                signals.add(Signal::Attachment(attachment_type(leaf.mimetype)));
-                return;
-            };
-            let budget = self.limits.max_text_bytes.saturating_sub(out.text_bytes());
-            if budget == 0 {
-                signals.add(Signal::TextCapHit);
-                return;
-            }
-            if !decode_leaf(leaf, budget, &mut self.decoded, &mut self.text, signals) {
-                signals.add(Signal::TextCapHit);
-            }
-            match kind {
-                TextKind::Plain => {
-                    saw_plain = true;
-                    let mut segment = String::with_capacity(self.text.len());
-                    url_count += urls::cut_urls(&self.text, &mut segment, &mut out.url_hosts);
-                    out.body.push(segment);
+        mime::walk(
+            raw,
+            &top,
+            limits,
+            Selection::Reader,
+            &mut signals,
+            |leaf, signals| {
+                saw_plain |= leaf.has_plain_alternative;
+                let kind = text_kind(leaf);
+                let Some(kind) = kind else {
+                    signals.add(Signal::Attachment(attachment_type(leaf.mimetype)));
+                    return;
+                };
+                let budget = self.limits.max_text_bytes.saturating_sub(out.text_bytes());
+                if budget == 0 {
+                    signals.add(Signal::TextCapHit);
+                    return;
                 }
-                TextKind::Html => {
-                    saw_html = true;
-                    let rendered = html::html_to_text(&self.text, budget);
-                    if rendered.truncated {
-                        signals.add(Signal::TextCapHit);
+                if !decode_leaf(leaf, budget, &mut self.decoded, &mut self.text, signals) {
+                    signals.add(Signal::TextCapHit);
+                }
+                match kind {
+                    TextKind::Plain => {
+                        saw_plain = true;
+                        let mut segment = String::with_capacity(self.text.len());
+                        url_count += urls::cut_urls(&self.text, &mut segment, &mut out.url_hosts);
+                        out.body.push(segment);
                     }
-                    for link in &rendered.links {
-                        url_count += 1;
-                        if out.url_hosts.len() < urls::MAX_HOSTS
-                            && let Some(host) = urls::host_of(link)
-                        {
-                            out.url_hosts.push(host);
+                    TextKind::Html => {
+                        saw_html = true;
+                        let rendered = html::html_to_text(&self.text, budget);
+                        if rendered.truncated {
+                            signals.add(Signal::TextCapHit);
+                        }
+                        for link in &rendered.links {
+                            url_count += 1;
+                            if out.url_hosts.len() < urls::MAX_HOSTS
+                                && let Some(host) = urls::host_of(link)
+                            {
+                                out.url_hosts.push(host);
+                            }
+                        }
+                        let mut segment = String::with_capacity(rendered.visible.len());
+                        url_count +=
+                            urls::cut_urls(&rendered.visible, &mut segment, &mut out.url_hosts);
+                        out.body.push(segment);
+                        if !rendered.hidden.trim().is_empty() {
+                            signals.add(Signal::HiddenText);
+                            out.hidden.push(rendered.hidden);
                         }
                     }
-                    let mut segment = String::with_capacity(rendered.visible.len());
-                    url_count += urls::cut_urls(&rendered.visible, &mut segment, &mut out.url_hosts);
-                    out.body.push(segment);
-                    if !rendered.hidden.trim().is_empty() {
-                        signals.add(Signal::HiddenText);
-                        out.hidden.push(rendered.hidden);
-                    }
                 }
-            }
-        });
+            },
+        );
         out.signals = signals;
         if saw_html && !saw_plain {
             out.signals.add(Signal::HtmlOnly);
@@ -310,14 +318,27 @@ pub fn decoded_text_parts(raw: &[u8], limits: ExtractLimits) -> Result<Vec<TextP
     let mut signals = Signals::default();
     let mut decoded = Vec::new();
     let mut text = String::new();
-    mime::walk(raw, &top, walk_limits, Selection::Every, &mut signals, |leaf, signals| {
-        if leaf.mimetype.starts_with("text/") {
-            decode_leaf(leaf, limits.max_text_bytes, &mut decoded, &mut text, signals);
-            parts.push(TextPart {
-                mimetype: leaf.mimetype.to_string(),
-                text: text.clone(),
-            });
-        }
-    });
+    mime::walk(
+        raw,
+        &top,
+        walk_limits,
+        Selection::Every,
+        &mut signals,
+        |leaf, signals| {
+            if leaf.mimetype.starts_with("text/") {
+                decode_leaf(
+                    leaf,
+                    limits.max_text_bytes,
+                    &mut decoded,
+                    &mut text,
+                    signals,
+                );
+                parts.push(TextPart {
+                    mimetype: leaf.mimetype.to_string(),
+                    text: text.clone(),
+                });
+            }
+        },
+    );
     Ok(parts)
 }

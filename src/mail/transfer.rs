@@ -195,7 +195,10 @@ mod tests {
         // Rule (3): trailing whitespace is padding and is removed.
         assert_eq!(qp("word   \nnext").0, "word\nnext");
         // Rule (5): a soft line break "=" at end of line joins the lines.
-        assert_eq!(qp("Now's the time =\nfor all folk").0, "Now's the time for all folk");
+        assert_eq!(
+            qp("Now's the time =\nfor all folk").0,
+            "Now's the time for all folk"
+        );
         // Soft break followed by padding whitespace (rule 3 applies first).
         assert_eq!(qp("abc= \t\r\ndef").0, "abcdef");
         // RFC 2045 §6.7 note (2): a malformed "=" sequence is kept literally.

@@ -27,10 +27,7 @@ pub fn host_of(url: &str) -> Option<String> {
         None if starts_with_ignore_case(url, "www.") => url,
         None => return None,
     };
-    let authority = rest
-        .split(['/', '?', '#', '\\'])
-        .next()
-        .unwrap_or(rest);
+    let authority = rest.split(['/', '?', '#', '\\']).next().unwrap_or(rest);
     let host_port = authority.rsplit('@').next().unwrap_or(authority);
     let host = if let Some(inner) = host_port.strip_prefix('[') {
         // An IPv6 literal (RFC 3986 §3.2.2).
@@ -48,8 +45,7 @@ pub fn host_of(url: &str) -> Option<String> {
 }
 
 fn starts_with_ignore_case(s: &str, prefix: &str) -> bool {
-    s.len() >= prefix.len()
-        && s.as_bytes()[..prefix.len()].eq_ignore_ascii_case(prefix.as_bytes())
+    s.len() >= prefix.len() && s.as_bytes()[..prefix.len()].eq_ignore_ascii_case(prefix.as_bytes())
 }
 
 /// Byte range of the URL that starts at `start` in `text`: it runs to the first
@@ -120,9 +116,18 @@ mod tests {
     #[test]
     fn hosts_from_urls() {
         // RFC 3986 §3.2: userinfo and port are not part of the host.
-        assert_eq!(host_of("https://user:pw@Promo.Example:8443/x?y").as_deref(), Some("promo.example"));
-        assert_eq!(host_of("http://[2001:db8::1]/").as_deref(), Some("2001:db8::1"));
-        assert_eq!(host_of("www.lindqvist.test/path").as_deref(), Some("www.lindqvist.test"));
+        assert_eq!(
+            host_of("https://user:pw@Promo.Example:8443/x?y").as_deref(),
+            Some("promo.example")
+        );
+        assert_eq!(
+            host_of("http://[2001:db8::1]/").as_deref(),
+            Some("2001:db8::1")
+        );
+        assert_eq!(
+            host_of("www.lindqvist.test/path").as_deref(),
+            Some("www.lindqvist.test")
+        );
         assert_eq!(host_of("mailto:ada@example.org"), None);
         assert_eq!(host_of("http://"), None);
     }
