@@ -16,7 +16,9 @@ const MESSAGES: usize = 2000;
 const SEED: u64 = 7;
 
 fn corpus() -> Vec<Vec<u8>> {
-    tamis::demo::generate(SEED, MESSAGES).map(|m| m.bytes).collect()
+    tamis::demo::generate(SEED, MESSAGES)
+        .map(|m| m.bytes)
+        .collect()
 }
 
 /// One pass over the corpus; the sum of non-zeros keeps the work observable.

@@ -48,7 +48,10 @@ pub fn run(args: &CorpusArgs) -> anyhow::Result<()> {
         args.seed
     );
     println!("labels: {}", args.out.join(LABELS_FILE).display());
-    println!("{:<28} {:>6} {:>6} {:>7}", "recipient domain", "ham", "spam", "ham %");
+    println!(
+        "{:<28} {:>6} {:>6} {:>7}",
+        "recipient domain", "ham", "spam", "ham %"
+    );
     for (domain, counts) in &summary.per_domain {
         let share = if counts.total() == 0 {
             0.0

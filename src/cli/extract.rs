@@ -119,7 +119,12 @@ fn write_text(out: &mut impl Write, r: &Report<'_>, spec: &FeatureSpec) -> std::
         ("body", &r.body_tokens),
         ("hidden", &r.hidden_tokens),
     ] {
-        writeln!(out, "{name:<9} {:>5} tokens: {}", tokens.len(), tokens.join(" "))?;
+        writeln!(
+            out,
+            "{name:<9} {:>5} tokens: {}",
+            tokens.len(),
+            tokens.join(" ")
+        )?;
     }
     writeln!(out, "{:<9} {}", "url hosts", r.url_hosts.join(", "))?;
     writeln!(out, "{:<9} {}", "sender", r.sender_domain.unwrap_or("-"))?;

@@ -46,7 +46,11 @@ pub fn main() -> ExitCode {
         Ok(cli) => cli,
         Err(e) => {
             // clap prints help and version to stdout with success, usage errors to stderr.
-            let code = if e.use_stderr() { EXIT_BAD_INPUT } else { EXIT_OK };
+            let code = if e.use_stderr() {
+                EXIT_BAD_INPUT
+            } else {
+                EXIT_OK
+            };
             let _ = e.print();
             return ExitCode::from(code);
         }

@@ -182,7 +182,12 @@ impl Featurizer {
     }
 
     /// The message's feature vector: hashed counts, `1 + ln(tf)`, unit L2 norm.
-    pub fn featurize(&mut self, fields: &FieldTokens, extracted: &Extracted, out: &mut SparseVector) {
+    pub fn featurize(
+        &mut self,
+        fields: &FieldTokens,
+        extracted: &Extracted,
+        out: &mut SparseVector,
+    ) {
         let mut indices = std::mem::take(&mut self.indices);
         indices.clear();
         self.for_each_feature(fields, extracted, |_, _, index| indices.push(index));

@@ -140,7 +140,10 @@ mod tests {
             version: 99,
             ..FeatureSpec::default()
         };
-        assert!(matches!(spec.check_supported(), Err(SpecError::Version { found: 99, .. })));
+        assert!(matches!(
+            spec.check_supported(),
+            Err(SpecError::Version { found: 99, .. })
+        ));
         let spec = FeatureSpec {
             hash_bits: 40,
             ..FeatureSpec::default()

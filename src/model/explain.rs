@@ -19,7 +19,11 @@ pub struct Contribution {
 /// The `k` features of the analyzer's last message with the largest absolute contribution
 /// to its margin under `model`. Texts that hash to the same index share its contribution
 /// equally, so the parts always add up to the margin minus the bias.
-pub fn top_contributions(model: &LinearModel, analyzer: &mut Analyzer, k: usize) -> Vec<Contribution> {
+pub fn top_contributions(
+    model: &LinearModel,
+    analyzer: &mut Analyzer,
+    k: usize,
+) -> Vec<Contribution> {
     let mut texts_per_index: HashMap<u32, Vec<String>> = HashMap::new();
     analyzer.for_each_feature(|ns, text, index| {
         let names = texts_per_index.entry(index).or_default();
@@ -71,7 +75,9 @@ mod tests {
             hash_bits: 12,
             ..FeatureSpec::default()
         };
-        let weights: Vec<f32> = (0..4096).map(|i| ((i * 37 % 101) as f32 - 50.0) / 25.0).collect();
+        let weights: Vec<f32> = (0..4096)
+            .map(|i| ((i * 37 % 101) as f32 - 50.0) / 25.0)
+            .collect();
         let model = LinearModel::new(spec.clone(), weights, 0.5, None, TrainingSummary::default())
             .expect("valid model");
         let mut analyzer = Analyzer::new(spec).expect("valid spec");
@@ -79,7 +85,10 @@ mod tests {
         let margin = model.margin(analyzer.vectorize(raw).expect("mail"));
         let all = top_contributions(&model, &mut analyzer, usize::MAX);
         let sum: f64 = all.iter().map(|c| c.contribution).sum();
-        assert!((sum + model.bias() - margin).abs() < 1e-9, "sum {sum} margin {margin}");
+        assert!(
+            (sum + model.bias() - margin).abs() < 1e-9,
+            "sum {sum} margin {margin}"
+        );
         assert!(all.iter().any(|c| c.feature == "body:\"claim your\""));
         assert!(all.iter().any(|c| c.feature == "url:promo.example"));
         let top3 = top_contributions(&model, &mut analyzer, 3);

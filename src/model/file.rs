@@ -49,7 +49,9 @@ pub enum ModelFileError {
         path: PathBuf,
     },
     /// The file was written by a newer (or unknown) format version.
-    #[error("{path}: model format version {found} is not supported (this binary reads version {FORMAT_VERSION}); use the tamis release that wrote it or retrain")]
+    #[error(
+        "{path}: model format version {found} is not supported (this binary reads version {FORMAT_VERSION}); use the tamis release that wrote it or retrain"
+    )]
     Version {
         /// The file.
         path: PathBuf,
@@ -57,7 +59,9 @@ pub enum ModelFileError {
         found: u16,
     },
     /// The file ends before a field it declares.
-    #[error("{path}: truncated: {field} needs bytes up to offset {needed} but the file has {len} bytes")]
+    #[error(
+        "{path}: truncated: {field} needs bytes up to offset {needed} but the file has {len} bytes"
+    )]
     Truncated {
         /// The file.
         path: PathBuf,
@@ -231,12 +235,11 @@ pub fn decode_model(bytes: &[u8], path: &Path) -> Result<LinearModel, ModelFileE
             computed,
         });
     }
-    let header: Header = serde_json::from_slice(&bytes[16..header_end]).map_err(|e| {
-        ModelFileError::Header {
+    let header: Header =
+        serde_json::from_slice(&bytes[16..header_end]).map_err(|e| ModelFileError::Header {
             path: p(),
             reason: e.to_string(),
-        }
-    })?;
+        })?;
     let weights: Vec<f32> = bytes[weights_start..weights_end]
         .chunks_exact(4)
         .map(|c| f32::from_le_bytes([c[0], c[1], c[2], c[3]]))
@@ -244,8 +247,14 @@ pub fn decode_model(bytes: &[u8], path: &Path) -> Result<LinearModel, ModelFileE
     let mut bias_bytes = [0u8; 8];
     bias_bytes.copy_from_slice(&bytes[weights_end..body_end]);
     let bias = f64::from_le_bytes(bias_bytes);
-    LinearModel::new(header.feature_spec, weights, bias, header.calibration, header.summary)
-        .map_err(|source| ModelFileError::Incompatible { path: p(), source })
+    LinearModel::new(
+        header.feature_spec,
+        weights,
+        bias,
+        header.calibration,
+        header.summary,
+    )
+    .map_err(|source| ModelFileError::Incompatible { path: p(), source })
 }
 
 #[cfg(test)]
@@ -299,11 +308,20 @@ mod tests {
         let mut flipped = bytes.clone();
         let middle = flipped.len() / 2;
         flipped[middle] ^= 0x40;
-        assert!(matches!(decode(&flipped), Err(ModelFileError::Checksum { .. })));
-        assert!(matches!(decode(b"GIF89a......................"), Err(ModelFileError::Foreign { .. })));
+        assert!(matches!(
+            decode(&flipped),
+            Err(ModelFileError::Checksum { .. })
+        ));
+        assert!(matches!(
+            decode(b"GIF89a......................"),
+            Err(ModelFileError::Foreign { .. })
+        ));
         let mut newer = bytes.clone();
         newer[8] = 9;
-        assert!(matches!(decode(&newer), Err(ModelFileError::Version { found: 9, .. })));
+        assert!(matches!(
+            decode(&newer),
+            Err(ModelFileError::Version { found: 9, .. })
+        ));
     }
 
     #[test]
@@ -321,7 +339,10 @@ mod tests {
         edited[body_end..].copy_from_slice(&crc.to_le_bytes());
         match decode(&edited) {
             Err(ModelFileError::Incompatible { source, .. }) => {
-                assert!(source.to_string().contains("feature spec version 7"), "{source}");
+                assert!(
+                    source.to_string().contains("feature spec version 7"),
+                    "{source}"
+                );
             }
             other => panic!("{other:?}"),
         }

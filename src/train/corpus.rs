@@ -289,32 +289,39 @@ fn starts_like_mbox(path: &Path) -> bool {
 impl Plan {
     /// Streams every message of the plan in order; each is read whole but at most
     /// `max_bytes + 1` bytes are kept. Unreadable files yield a [`Problem`].
-    pub fn messages(&self, max_bytes: usize) -> impl Iterator<Item = Result<RawMessage, Problem>> + '_ {
-        self.files.iter().flat_map(move |file| -> Box<dyn Iterator<Item = Result<RawMessage, Problem>>> {
-            match file.kind {
-                FileKind::Single => Box::new(std::iter::once(read_single(file, max_bytes))),
-                FileKind::Mbox => match File::open(&file.path) {
-                    Ok(f) => Box::new(MboxReader::new(BufReader::new(f), max_bytes).enumerate().map(
-                        move |(i, message)| match message {
-                            Ok(bytes) => Ok(RawMessage {
-                                origin: format!("{}#{}", file.path.display(), i + 1),
-                                bytes,
-                                label: file.label,
-                                domain: file.domain.clone(),
-                            }),
-                            Err(e) => Err(Problem {
-                                path: file.path.clone(),
-                                what: format!("read error in message {}: {e}", i + 1),
-                            }),
-                        },
-                    )),
-                    Err(e) => Box::new(std::iter::once(Err(Problem {
-                        path: file.path.clone(),
-                        what: format!("cannot read: {e}"),
-                    }))),
-                },
-            }
-        })
+    pub fn messages(
+        &self,
+        max_bytes: usize,
+    ) -> impl Iterator<Item = Result<RawMessage, Problem>> + '_ {
+        self.files.iter().flat_map(
+            move |file| -> Box<dyn Iterator<Item = Result<RawMessage, Problem>>> {
+                match file.kind {
+                    FileKind::Single => Box::new(std::iter::once(read_single(file, max_bytes))),
+                    FileKind::Mbox => match File::open(&file.path) {
+                        Ok(f) => Box::new(
+                            MboxReader::new(BufReader::new(f), max_bytes)
+                                .enumerate()
+                                .map(move |(i, message)| match message {
+                                    Ok(bytes) => Ok(RawMessage {
+                                        origin: format!("{}#{}", file.path.display(), i + 1),
+                                        bytes,
+                                        label: file.label,
+                                        domain: file.domain.clone(),
+                                    }),
+                                    Err(e) => Err(Problem {
+                                        path: file.path.clone(),
+                                        what: format!("read error in message {}: {e}", i + 1),
+                                    }),
+                                }),
+                        ),
+                        Err(e) => Box::new(std::iter::once(Err(Problem {
+                            path: file.path.clone(),
+                            what: format!("cannot read: {e}"),
+                        }))),
+                    },
+                }
+            },
+        )
     }
 }
 

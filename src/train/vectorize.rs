@@ -50,7 +50,10 @@ pub fn progress_bar(len: u64, what: &str) -> ProgressBar {
 }
 
 /// Reads and featurizes every message of `plan` under `spec`.
-pub fn vectorize_plan(plan: &Plan, spec: &FeatureSpec) -> Result<LabelledVectors, crate::features::SpecError> {
+pub fn vectorize_plan(
+    plan: &Plan,
+    spec: &FeatureSpec,
+) -> Result<LabelledVectors, crate::features::SpecError> {
     spec.check_supported()?;
     let mut out = LabelledVectors {
         problems: plan.problems.clone(),

@@ -18,7 +18,11 @@ fn json_lines_have_the_documented_fields_and_groups_agree() {
             .args(&files)
             .output()
             .expect("run tamis");
-        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
         let lines: Vec<Value> = String::from_utf8(out.stdout)
             .expect("UTF-8 output")
             .lines()
@@ -26,11 +30,22 @@ fn json_lines_have_the_documented_fields_and_groups_agree() {
             .collect();
         assert_eq!(lines.len(), files.len());
         for line in &lines {
-            for key in ["file", "subject_tokens", "body_tokens", "url_hosts", "signals", "features"] {
+            for key in [
+                "file",
+                "subject_tokens",
+                "body_tokens",
+                "url_hosts",
+                "signals",
+                "features",
+            ] {
                 assert!(line.get(key).is_some(), "missing {key} in {line}");
             }
             assert!(line["features"].as_u64().is_some_and(|n| n > 0));
-            assert_eq!(line["body_tokens"], lines[0]["body_tokens"], "{group}: {}", line["file"]);
+            assert_eq!(
+                line["body_tokens"], lines[0]["body_tokens"],
+                "{group}: {}",
+                line["file"]
+            );
         }
     }
 }
@@ -43,13 +58,24 @@ fn non_mail_file_exits_2_naming_the_file() {
     let empty = dir.path().join("empty.eml");
     std::fs::write(&empty, b"").expect("write");
     for path in [&binary, &empty] {
-        let out = tamis().arg("extract").arg(path).output().expect("run tamis");
+        let out = tamis()
+            .arg("extract")
+            .arg(path)
+            .output()
+            .expect("run tamis");
         assert_eq!(out.status.code(), Some(2));
         let stderr = String::from_utf8_lossy(&out.stderr);
-        assert!(stderr.contains(&path.display().to_string()), "stderr: {stderr}");
+        assert!(
+            stderr.contains(&path.display().to_string()),
+            "stderr: {stderr}"
+        );
     }
     let missing = dir.path().join("no-such.eml");
-    let out = tamis().arg("extract").arg(&missing).output().expect("run tamis");
+    let out = tamis()
+        .arg("extract")
+        .arg(&missing)
+        .output()
+        .expect("run tamis");
     assert_eq!(out.status.code(), Some(2));
     assert!(String::from_utf8_lossy(&out.stderr).contains("no-such.eml"));
 }

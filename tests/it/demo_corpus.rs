@@ -18,7 +18,11 @@ fn read_labels(dir: &Path) -> Vec<(String, String, String)> {
         .map(|line| {
             let cols: Vec<&str> = line.split('\t').collect();
             assert_eq!(cols.len(), 3, "three tab-separated columns: {line:?}");
-            (cols[0].to_string(), cols[1].to_string(), cols[2].to_string())
+            (
+                cols[0].to_string(),
+                cols[1].to_string(),
+                cols[2].to_string(),
+            )
         })
         .collect()
 }
@@ -48,7 +52,10 @@ fn labels_file_matches_the_files_written() {
     let mut per_domain: BTreeMap<String, (usize, usize)> = BTreeMap::new();
     let mut bytes = 0u64;
     for (path, label, domain) in &labels {
-        assert!(path.starts_with(&format!("{label}/")), "{path} filed under {label}");
+        assert!(
+            path.starts_with(&format!("{label}/")),
+            "{path} filed under {label}"
+        );
         let raw = fs::read(tmp.path().join(path)).expect("message file");
         bytes += raw.len() as u64;
         let parsed = mailparse::parse_mail(&raw).expect("message parses");
@@ -208,7 +215,10 @@ fn corpus_contains_the_text_disguises() {
     let mut spaced = false;
     for msg in demo::generate(7, 2000).filter(|m| m.label == Label::Spam) {
         let parsed = mailparse::parse_mail(&msg.bytes).expect("message parses");
-        let mut text = parsed.headers.get_first_value("Subject").unwrap_or_default();
+        let mut text = parsed
+            .headers
+            .get_first_value("Subject")
+            .unwrap_or_default();
         let mut stack = vec![&parsed];
         while let Some(p) = stack.pop() {
             if p.ctype.mimetype.starts_with("text/") {
@@ -217,13 +227,26 @@ fn corpus_contains_the_text_disguises() {
             stack.extend(p.subparts.iter());
         }
         // A Cyrillic letter directly after a Latin one: a look-alike inside a Latin word.
-        lookalike |= text.chars().zip(text.chars().skip(1)).any(|(a, b)| {
-            a.is_ascii_alphabetic() && ('\u{400}'..='\u{4ff}').contains(&b)
-        });
+        lookalike |= text
+            .chars()
+            .zip(text.chars().skip(1))
+            .any(|(a, b)| a.is_ascii_alphabetic() && ('\u{400}'..='\u{4ff}').contains(&b));
         zero_width |= text.contains(['\u{200b}', '\u{200c}', '\u{2060}', '\u{feff}']);
-        spaced |= ["P R I Z E", "p r i z e", "O R D E R", "o r d e r", "C L A I M", "c l a i m", "F R E E", "f r e e", "N O W", "W O N", "w o n"]
-            .iter()
-            .any(|s| text.contains(s));
+        spaced |= [
+            "P R I Z E",
+            "p r i z e",
+            "O R D E R",
+            "o r d e r",
+            "C L A I M",
+            "c l a i m",
+            "F R E E",
+            "f r e e",
+            "N O W",
+            "W O N",
+            "w o n",
+        ]
+        .iter()
+        .any(|s| text.contains(s));
     }
     assert!(lookalike, "look-alike Cyrillic letters");
     assert!(zero_width, "zero-width characters inside words");
@@ -234,7 +257,10 @@ fn corpus_contains_the_text_disguises() {
 fn python_email_reads_the_subjects_mailparse_reads() {
     // Reference parser: CPython's `email` package (policy=default decodes RFC 2047 words).
     // Skipped quietly when no python3 is on the PATH.
-    let Ok(out) = std::process::Command::new("python3").arg("--version").output() else {
+    let Ok(out) = std::process::Command::new("python3")
+        .arg("--version")
+        .output()
+    else {
         return;
     };
     if !out.status.success() {
@@ -260,12 +286,19 @@ print(json.dumps(out))
         .arg(tmp.path())
         .output()
         .expect("run python3");
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let py: BTreeMap<String, String> =
         serde_json::from_slice(&out.stdout).expect("JSON from python");
     for m in &msgs {
         let parsed = mailparse::parse_mail(&m.bytes).expect("message parses");
-        let ours = parsed.headers.get_first_value("Subject").unwrap_or_default();
+        let ours = parsed
+            .headers
+            .get_first_value("Subject")
+            .unwrap_or_default();
         assert_eq!(py.get(&m.name), Some(&ours), "{}", m.name);
     }
 }

@@ -51,19 +51,32 @@ fn see(analyzer: &mut Analyzer, path: &Path) -> Seen {
 
 fn assert_group_invariant(group: &str, min_files: usize) {
     let files = group_files(group);
-    assert!(files.len() >= min_files, "group {group} has {} files", files.len());
+    assert!(
+        files.len() >= min_files,
+        "group {group} has {} files",
+        files.len()
+    );
     let mut analyzer = Analyzer::default();
     let reference = see(&mut analyzer, &files[0]);
-    assert!(reference.body_tokens.len() >= 5, "{group}: too few tokens to prove anything");
+    assert!(
+        reference.body_tokens.len() >= 5,
+        "{group}: too few tokens to prove anything"
+    );
     for path in &files[1..] {
         let seen = see(&mut analyzer, path);
         assert_eq!(
-            reference.body_tokens, seen.body_tokens,
+            reference.body_tokens,
+            seen.body_tokens,
             "{group}: {} vs {}",
             files[0].display(),
             path.display()
         );
-        assert_eq!(reference.word_features, seen.word_features, "{}", path.display());
+        assert_eq!(
+            reference.word_features,
+            seen.word_features,
+            "{}",
+            path.display()
+        );
     }
 }
 

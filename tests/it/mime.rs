@@ -23,7 +23,10 @@ fn body(e: &Extracted) -> String {
 fn rfc2047_section8_examples_decode_as_shown() {
     // RFC 2047 §8: the Subject example spanning two encoded-words in two charsets.
     let raw = b"Subject: =?ISO-8859-1?B?SWYgeW91IGNhbiByZWFkIHRoaXMgeW8=?=\r\n =?ISO-8859-2?B?dSB1bmRlcnN0YW5kIHRoZSBleGFtcGxlLg==?=\r\n\r\n";
-    assert_eq!(extract(raw).subject, "If you can read this you understand the example.");
+    assert_eq!(
+        extract(raw).subject,
+        "If you can read this you understand the example."
+    );
     // RFC 2047 §8: the table of encoded-word sequences and how they display. Whitespace
     // between adjacent encoded-words is dropped; underscore is a space in Q encoding.
     let cases = [
@@ -37,7 +40,11 @@ fn rfc2047_section8_examples_decode_as_shown() {
     ];
     for (encoded, shown) in cases {
         let raw = format!("Subject: {encoded}\r\n\r\n");
-        assert_eq!(extract(raw.as_bytes()).subject, shown, "encoded: {encoded:?}");
+        assert_eq!(
+            extract(raw.as_bytes()).subject,
+            shown,
+            "encoded: {encoded:?}"
+        );
     }
 }
 
@@ -70,7 +77,10 @@ fn alternative_is_read_once_and_attachments_become_signals() {
     assert_eq!(e.body.len(), 1, "one alternative read: {:?}", e.body);
     assert!(body(&e).contains("hello there"));
     assert!(!body(&e).contains("secret"));
-    assert!(e.signals.contains(&Signal::Attachment("application/pdf".into())));
+    assert!(
+        e.signals
+            .contains(&Signal::Attachment("application/pdf".into()))
+    );
     assert!(e.signals.contains(&Signal::Attachment("text/plain".into())));
     assert!(!e.signals.contains(&Signal::HtmlOnly));
 }
@@ -92,7 +102,10 @@ fn non_mail_is_refused() {
         extractor.extract(b"\x89PNG\r\n\x1a\n\0\0\0\rIHDR", &mut out),
         Err(MailError::NotMail)
     );
-    assert_eq!(extractor.extract(b"\x7fELF\x02\x01\x01", &mut out), Err(MailError::NotMail));
+    assert_eq!(
+        extractor.extract(b"\x7fELF\x02\x01\x01", &mut out),
+        Err(MailError::NotMail)
+    );
 }
 
 mod hostile {
@@ -122,7 +135,10 @@ mod hostile {
 
     #[test]
     fn missing_boundary_parameter_reads_body_as_text() {
-        let e = extract_with(b"Content-Type: multipart/mixed\r\n\r\nplain words\r\n", limits());
+        let e = extract_with(
+            b"Content-Type: multipart/mixed\r\n\r\nplain words\r\n",
+            limits(),
+        );
         assert!(body(&e).contains("plain words"));
     }
 
@@ -132,7 +148,10 @@ mod hostile {
             let mut raw = Vec::new();
             for level in 0..depth {
                 raw.extend_from_slice(
-                    format!("Content-Type: multipart/mixed; boundary=b{level}\r\n\r\n--b{level}\r\n").as_bytes(),
+                    format!(
+                        "Content-Type: multipart/mixed; boundary=b{level}\r\n\r\n--b{level}\r\n"
+                    )
+                    .as_bytes(),
                 );
             }
             raw.extend_from_slice(b"Content-Type: text/plain\r\n\r\ndeep text\r\n");
@@ -170,10 +189,16 @@ mod hostile {
 
     #[test]
     fn unknown_and_lying_charsets() {
-        let e = extract_with(b"Content-Type: text/plain; charset=x-martian\r\n\r\nhello", limits());
+        let e = extract_with(
+            b"Content-Type: text/plain; charset=x-martian\r\n\r\nhello",
+            limits(),
+        );
         assert!(e.signals.contains(&Signal::CharsetUnknown));
         assert_eq!(body(&e), "hello");
-        let e = extract_with(b"Content-Type: text/plain; charset=utf-8\r\n\r\nbad \xff\xfe bytes", limits());
+        let e = extract_with(
+            b"Content-Type: text/plain; charset=utf-8\r\n\r\nbad \xff\xfe bytes",
+            limits(),
+        );
         assert!(e.signals.contains(&Signal::CharsetInvalid));
         assert!(body(&e).contains("bytes"));
     }
@@ -197,7 +222,8 @@ mod hostile {
 
     #[test]
     fn huge_base64_and_html_bodies_stay_within_the_cap() {
-        let mut raw = b"Content-Type: text/html\r\nContent-Transfer-Encoding: base64\r\n\r\n".to_vec();
+        let mut raw =
+            b"Content-Type: text/html\r\nContent-Transfer-Encoding: base64\r\n\r\n".to_vec();
         for _ in 0..200_000 {
             raw.extend_from_slice(b"PGRpdj5oZWxsbyB3b3JsZDwvZGl2Pgo=\r\n".as_slice());
         }

@@ -26,7 +26,11 @@ fn matches_commonly_published_vectors() {
         (b"\0\0\0\0", 0, 0x2362_F9DE),
         (b"aaaa", 0x9747_b28c, 0x5A97_808A),
         (b"Hello, world!", 0x9747_b28c, 0x2488_4CBA),
-        (b"The quick brown fox jumps over the lazy dog", 0x9747_b28c, 0x2FA8_26CD),
+        (
+            b"The quick brown fox jumps over the lazy dog",
+            0x9747_b28c,
+            0x2FA8_26CD,
+        ),
     ];
     for (data, seed, expected) in cases {
         assert_eq!(
@@ -71,7 +75,11 @@ print(json.dumps([[murmurhash3_32(s, seed=seed, positive=True) for seed in seeds
     assert_eq!(expected.len(), strings.len());
     for (s, row) in strings.iter().zip(&expected) {
         for (&seed, &want) in seeds.iter().zip(row) {
-            assert_eq!(murmur3_x86_32(s.as_bytes(), seed), want, "string {s:?} seed {seed}");
+            assert_eq!(
+                murmur3_x86_32(s.as_bytes(), seed),
+                want,
+                "string {s:?} seed {seed}"
+            );
         }
     }
 }
