@@ -31,6 +31,7 @@ if [ ! -x "$python" ]; then
 fi
 
 rm -rf "$corpus"
+mkdir -p "$out"
 target/release/tamis corpus --out "$corpus" --count "$count" >"$out/corpus-summary.txt"
 
 rust_line="$(target/release/examples/extract_throughput "$corpus" "${PASSES:-5}")"

@@ -10,16 +10,22 @@ use anyhow::Context;
 
 use crate::demo::{self, LABELS_FILE};
 
+/// Shown after the options in `tamis corpus --help`.
+const AFTER_HELP: &str = "\
+Writes OUT/ham/NNNNNN.eml, OUT/spam/NNNNNN.eml and OUT/labels.tsv, whose lines are
+`relative/path<TAB>spam|ham<TAB>recipient-domain`. The same seed and count always give
+byte-identical files, and a smaller count gives a prefix of a larger one.
+
+Everything in the corpus is invented: the organisations, people and products, all text, and
+all domains (reserved names such as *.example and *.test). Use it to try the tools; do not
+read a model's score on it as evidence of how well tamis filters real mail.
+
+Example:
+  tamis corpus --out demo-corpus --count 5000 --seed 7";
+
 /// Arguments of `tamis corpus`.
-///
-/// Writes OUT/ham/NNNNNN.eml, OUT/spam/NNNNNN.eml and OUT/labels.tsv, whose lines are
-/// `relative/path<TAB>spam|ham<TAB>recipient-domain`. The same seed and count always give
-/// byte-identical files, and a smaller count gives a prefix of a larger one.
-///
-/// Everything in the corpus is invented: the organisations, people and products, all text,
-/// and all domains (reserved names such as *.example and *.test). Use it to try the tools;
-/// do not read a model's score on it as evidence of how well it filters real mail.
 #[derive(clap::Args, Debug)]
+#[command(after_help = AFTER_HELP)]
 pub struct CorpusArgs {
     /// Directory to write into; created if missing. Existing files of the same names are
     /// overwritten, other files are left alone.

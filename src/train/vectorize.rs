@@ -90,7 +90,7 @@ pub fn vectorize_plan(
                 |analyzer, message| match analyzer {
                     Ok(analyzer) => analyzer
                         .vectorize(&message.bytes)
-                        .map(Clone::clone)
+                        .cloned()
                         .map_err(|e| e.to_string()),
                     Err(e) => Err(e.to_string()),
                 },
