@@ -652,12 +652,12 @@ fn digest(rng: &mut Rng, dom: &Domain) -> Draft {
         toc.push(format!("{}. {} ({})", i + 1, item.subject, item.from));
     }
     d.blocks.push(Block::Para(format!(
-        "Send submissions to the {list} list to {list}@{list_host}. To subscribe or \
-         unsubscribe, visit https://{list_host}/options/{list} or write to \
-         {list}-request@{list_host}. When replying, please edit your subject line so it is \
-         more specific than the digest's."
+        "This is the collected traffic of the {list} list. Post to the list at \
+         {list}@{list_host}; change how you receive it at https://{list_host}/options/{list}. \
+         If you answer one of the posts below, give your reply that post's subject rather \
+         than the digest's, so the thread stays readable."
     )));
-    d.blocks.push(Block::Heading("Today's topics".to_string()));
+    d.blocks.push(Block::Heading("In this digest".to_string()));
     d.blocks.push(Block::Bullets(toc));
     if rng.chance(300) {
         d.layout = Layout::Digest;
@@ -674,7 +674,7 @@ fn digest(rng: &mut Rng, dom: &Domain) -> Draft {
             )));
         }
         d.blocks.push(Block::Verbatim(format!(
-            "End of {list} digest, number {number}\n***********************************"
+            "-- end of digest {number} of the {list} list --"
         )));
         d.layout = Layout::Plain;
     }

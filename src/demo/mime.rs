@@ -205,7 +205,10 @@ pub(crate) fn encode_part(part: &Part, out: &mut Vec<u8>) {
             );
             out.extend_from_slice(b"\r\n");
             if *subtype != "digest" {
-                push_line(out, "This is a multi-part message in MIME format.");
+                push_line(
+                    out,
+                    "(Several parts follow; a MIME-aware reader shows them.)",
+                );
             }
             for child in parts {
                 out.extend_from_slice(b"\r\n--");

@@ -365,7 +365,7 @@ fn account_phish(rng: &mut Rng, dom: &Domain, to_addr: &str) -> Draft {
         ),
         Block::Button {
             text: "Validate account".to_string(),
-            url: link(rng, "owa/validate"),
+            url: link(rng, "webmail/validate"),
         },
         Block::Small(format!(
             "(c) {} IT Services. All rights reserved.",
