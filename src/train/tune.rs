@@ -58,7 +58,12 @@ pub struct DomainThresholds {
 
 /// The lowest threshold whose false-positive bound meets `target_fpr`, or `None` when no
 /// threshold can be supported by `ham` alone.
-pub fn tune_threshold(spam: &[f64], ham: &[f64], target_fpr: f64, confidence: f64) -> Option<Threshold> {
+pub fn tune_threshold(
+    spam: &[f64],
+    ham: &[f64],
+    target_fpr: f64,
+    confidence: f64,
+) -> Option<Threshold> {
     let mut ham_desc: Vec<f64> = ham.iter().copied().filter(|s| s.is_finite()).collect();
     ham_desc.sort_by(|a, b| b.total_cmp(a));
     let n = ham_desc.len() as u64;
@@ -98,7 +103,11 @@ fn conservative(spam: &[f64], ham: &[f64], confidence: f64) -> Threshold {
         .copied()
         .filter(|s| s.is_finite())
         .fold(f64::NEG_INFINITY, f64::max);
-    let margin = if max_ham.is_finite() { next_up(max_ham) } else { 0.0 };
+    let margin = if max_ham.is_finite() {
+        next_up(max_ham)
+    } else {
+        0.0
+    };
     Threshold {
         margin,
         false_positives: 0,
@@ -161,7 +170,11 @@ pub fn tune_domain(
         }
     };
     let tag = pick("tag", target.tag_fpr, fallback.map(|f| &f.tag));
-    let mut quarantine = pick("quarantine", target.quarantine_fpr, fallback.map(|f| &f.quarantine));
+    let mut quarantine = pick(
+        "quarantine",
+        target.quarantine_fpr,
+        fallback.map(|f| &f.quarantine),
+    );
     if quarantine.margin < tag.margin {
         // Quarantine must never be easier to reach than tagging.
         quarantine = Threshold {
@@ -180,7 +193,12 @@ pub fn tune_domain(
 }
 
 /// The thresholds as a policy snippet for the configuration file (TOML).
-pub fn policy_snippet(all: &DomainThresholds, domains: &[DomainThresholds], target: TuneTarget, model: &str) -> String {
+pub fn policy_snippet(
+    all: &DomainThresholds,
+    domains: &[DomainThresholds],
+    target: TuneTarget,
+    model: &str,
+) -> String {
     let mut out = String::new();
     out.push_str(&format!(
         "# Written by `tamis tune` for model {model}.\n# Targets: quarantine false-positive rate <= {}, tag <= {}, one-sided {:.0}% Clopper-Pearson bound.\n# Thresholds are margins: a message scoring at or above one gets that action.\n",

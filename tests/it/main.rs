@@ -2,6 +2,7 @@
 mod cli_extract;
 mod cpython_email;
 mod demo_corpus;
+mod eval_reference;
 mod html;
 pub mod invariance;
 mod mime;
