@@ -230,3 +230,74 @@ pub fn policy_snippet(
     }
     out
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn scores(n: usize, low: f64, high: f64) -> Vec<f64> {
+        (0..n)
+            .map(|i| low + (high - low) * i as f64 / n as f64)
+            .collect()
+    }
+
+    const TARGET: TuneTarget = TuneTarget {
+        quarantine_fpr: 0.001,
+        tag_fpr: 0.01,
+        confidence: 0.95,
+    };
+
+    #[test]
+    fn picks_the_lowest_threshold_whose_bound_meets_the_target() {
+        let ham = scores(5000, -2.0, 0.0);
+        let spam = scores(1000, -0.5, 2.0);
+        let t = tune_threshold(&spam, &ham, 0.001, 0.95).expect("5000 ham support 0.1%");
+        // With k = 0 the exact one-sided bound is 1 - 0.05^(1/n) (Clopper–Pearson closed
+        // form), 0.000599 for n = 5000; allowing one more false positive must break it.
+        assert!(t.supported && t.fpr_upper <= 0.001);
+        let next = clopper_pearson_upper(t.false_positives + 1, 5000, 0.95);
+        assert!(
+            next > 0.001,
+            "one more false positive would still fit: {next}"
+        );
+        let flagged = ham.iter().filter(|&&s| s >= t.margin).count() as u64;
+        assert_eq!(flagged, t.false_positives);
+        assert!(t.junk_caught > 0.7);
+        let zero = clopper_pearson_upper(0, 5000, 0.95);
+        assert!((zero - (1.0 - 0.05f64.powf(1.0 / 5000.0))).abs() < 1e-12);
+    }
+
+    #[test]
+    fn too_little_legitimate_mail_is_said_and_falls_back() {
+        let ham = scores(1000, -2.0, 0.0);
+        let spam = scores(300, -0.5, 2.0);
+        assert_eq!(tune_threshold(&spam, &ham, 0.001, 0.95), None);
+        let d = tune_domain(Some("small.test".into()), &spam, &ham, TARGET, None);
+        assert!(!d.quarantine.supported);
+        assert!(
+            d.quarantine.margin > 0.0 - 2.0 / 1000.0,
+            "above every ham score"
+        );
+        assert!(d.notes.iter().any(|n| n.contains("cannot support")));
+        assert!(d.tag.supported, "1000 ham do support 1%");
+        assert!(d.quarantine.margin >= d.tag.margin);
+    }
+
+    #[test]
+    fn snippet_lists_every_domain() {
+        let ham = scores(5000, -2.0, 0.0);
+        let spam = scores(1000, -0.5, 2.0);
+        let all = tune_domain(None, &spam, &ham, TARGET, None);
+        let one = tune_domain(
+            Some("uni-lindqvist.test".into()),
+            &spam,
+            &ham,
+            TARGET,
+            Some(&all),
+        );
+        let text = policy_snippet(&all, &[one], TARGET, "demo.tamis");
+        assert!(text.contains("[policy.default]"));
+        assert!(text.contains("[policy.domains.\"uni-lindqvist.test\"]"));
+        assert!(text.contains("quarantine_margin = "));
+    }
+}
