@@ -1,9 +1,10 @@
 //! The invented demonstration corpus: labelled RFC 5322 messages for examples, benchmarks and
 //! tests of the plumbing.
 //!
-//! Everything in it is made up for this project (the private `scenario` module holds the cast): the
-//! organisations, people, products and offers, every line of text, every domain (all under
-//! names reserved for documentation and testing) and every address (documentation ranges).
+//! Everything in it is made up for this project (the private `scenario` module holds the
+//! cast): the organisations, people, products and offers, every line of text, every domain
+//! (all under names reserved for documentation and testing) and every address (documentation
+//! ranges).
 //! It exists so that the tools can be tried without anyone's real mail. Because it is
 //! invented, a model's score on it says nothing about how well tamis filters real mail.
 //!

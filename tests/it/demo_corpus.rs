@@ -256,16 +256,6 @@ fn corpus_contains_the_text_disguises() {
 #[test]
 fn python_email_reads_the_subjects_mailparse_reads() {
     // Reference parser: CPython's `email` package (policy=default decodes RFC 2047 words).
-    // Skipped quietly when no python3 is on the PATH.
-    let Ok(out) = std::process::Command::new("python3")
-        .arg("--version")
-        .output()
-    else {
-        return;
-    };
-    if !out.status.success() {
-        return;
-    }
     let tmp = tempfile::tempdir().expect("temp dir");
     let msgs: Vec<_> = demo::generate(9, 120).collect();
     for m in &msgs {
@@ -281,18 +271,9 @@ for name in sorted(os.listdir(d)):
     out[name] = str(m['subject'])
 print(json.dumps(out))
 "#;
-    let out = std::process::Command::new("python3")
-        .args(["-c", script])
-        .arg(tmp.path())
-        .output()
-        .expect("run python3");
-    assert!(
-        out.status.success(),
-        "{}",
-        String::from_utf8_lossy(&out.stderr)
-    );
-    let py: BTreeMap<String, String> =
-        serde_json::from_slice(&out.stdout).expect("JSON from python");
+    let dir = tmp.path().to_string_lossy().into_owned();
+    let out = crate::python::run(script, &[&dir], b"");
+    let py: BTreeMap<String, String> = serde_json::from_slice(&out).expect("JSON from python");
     for m in &msgs {
         let parsed = mailparse::parse_mail(&m.bytes).expect("message parses");
         let ours = parsed
