@@ -8,4 +8,5 @@ pub mod invariance;
 mod mime;
 mod murmur;
 mod python;
+mod solver_reference;
 mod text_normalize;
