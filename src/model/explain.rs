@@ -78,8 +78,15 @@ mod tests {
         let weights: Vec<f32> = (0..4096)
             .map(|i| ((i * 37 % 101) as f32 - 50.0) / 25.0)
             .collect();
-        let model = LinearModel::new(spec.clone(), weights, 0.5, None, TrainingSummary::default())
-            .expect("valid model");
+        let model = LinearModel::new(
+            spec.clone(),
+            weights,
+            0.5,
+            None,
+            None,
+            TrainingSummary::default(),
+        )
+        .expect("valid model");
         let mut analyzer = Analyzer::new(spec).expect("valid spec");
         let raw = b"From: a@promo.example\r\nSubject: claim your prize\r\n\r\nclaim your prize at https://promo.example/x today\r\n";
         let margin = model.margin(analyzer.vectorize(raw).expect("mail"));

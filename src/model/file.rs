@@ -6,7 +6,7 @@
 //! 8       2     format version (u16 LE) = 1
 //! 10      2     reserved, 0
 //! 12      4     header length H (u32 LE), at most 1 MiB
-//! 16      H     header: UTF-8 JSON {feature_spec, calibration, summary}
+//! 16      H     header: UTF-8 JSON {feature_spec, calibration, thresholds, summary}
 //! 16+H    4     weight count N (u32 LE) = 2^hash_bits
 //! 20+H    4N    weights, f32 LE
 //! 20+H+4N 8     bias, f64 LE
@@ -21,7 +21,7 @@ use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
-use super::{Calibration, LinearModel, ModelError, TrainingSummary};
+use super::{Calibration, LinearModel, ModelError, Thresholds, TrainingSummary};
 use crate::features::FeatureSpec;
 
 /// First bytes of every model file.
@@ -105,6 +105,7 @@ pub enum ModelFileError {
 struct Header {
     feature_spec: FeatureSpec,
     calibration: Option<Calibration>,
+    thresholds: Option<Thresholds>,
     summary: TrainingSummary,
 }
 
@@ -113,6 +114,7 @@ pub fn encode_model(model: &LinearModel) -> Vec<u8> {
     let header = Header {
         feature_spec: model.spec().clone(),
         calibration: model.calibration(),
+        thresholds: model.thresholds(),
         summary: model.summary().clone(),
     };
     // Serializing plain structs of numbers and strings to JSON cannot fail.
@@ -252,6 +254,7 @@ pub fn decode_model(bytes: &[u8], path: &Path) -> Result<LinearModel, ModelFileE
         weights,
         bias,
         header.calibration,
+        header.thresholds,
         header.summary,
     )
     .map_err(|source| ModelFileError::Incompatible { path: p(), source })
@@ -272,6 +275,10 @@ mod tests {
             weights,
             -0.25,
             Some(Calibration { a: -2.0, b: 0.1 }),
+            Some(Thresholds {
+                tag: 0.2,
+                quarantine: 0.9,
+            }),
             TrainingSummary {
                 n_spam: 3,
                 n_ham: 9,

@@ -35,6 +35,16 @@ impl Calibration {
     }
 }
 
+/// Margins at which a message is tagged or quarantined, chosen at training time from
+/// out-of-fold margins; `tamis tune` refines them per domain.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct Thresholds {
+    /// Tag at or above this margin.
+    pub tag: f64,
+    /// Quarantine at or above this margin.
+    pub quarantine: f64,
+}
+
 /// How and from what a model was trained, as shown in reports and recorded in the file.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize, Default)]
 pub struct TrainingSummary {
@@ -78,6 +88,7 @@ pub struct LinearModel {
     weights: Vec<f32>,
     bias: f64,
     calibration: Option<Calibration>,
+    thresholds: Option<Thresholds>,
     summary: TrainingSummary,
 }
 
@@ -88,6 +99,7 @@ impl LinearModel {
         weights: Vec<f32>,
         bias: f64,
         calibration: Option<Calibration>,
+        thresholds: Option<Thresholds>,
         summary: TrainingSummary,
     ) -> Result<Self, ModelError> {
         spec.check_supported()?;
@@ -106,11 +118,15 @@ impl LinearModel {
         if calibration.is_some_and(|c| !c.a.is_finite() || !c.b.is_finite()) {
             return Err(ModelError::NonFinite("calibration"));
         }
+        if thresholds.is_some_and(|t| !t.tag.is_finite() || !t.quarantine.is_finite()) {
+            return Err(ModelError::NonFinite("thresholds"));
+        }
         Ok(LinearModel {
             spec,
             weights,
             bias,
             calibration,
+            thresholds,
             summary,
         })
     }
@@ -133,6 +149,11 @@ impl LinearModel {
     /// The Platt calibration, when the model has one.
     pub fn calibration(&self) -> Option<Calibration> {
         self.calibration
+    }
+
+    /// The default tag and quarantine margins, when training chose them.
+    pub fn thresholds(&self) -> Option<Thresholds> {
+        self.thresholds
     }
 
     /// How the model was trained.

@@ -8,6 +8,7 @@ pub mod online;
 pub mod platt;
 pub mod plots;
 pub mod roc;
+pub mod select;
 pub mod solver;
 pub mod stats;
 pub mod svmlight;
