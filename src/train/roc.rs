@@ -37,7 +37,7 @@ pub struct RocCurve {
 }
 
 /// The four counts of a binary decision at one threshold.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Default)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Default, serde::Serialize)]
 pub struct Confusion {
     /// Spam called spam.
     pub true_pos: u64,
