@@ -117,8 +117,6 @@ pub fn run(args: &TrainArgs) -> anyhow::Result<u8> {
     let mut best: Option<Best> = None;
     let mut candidates = Vec::new();
     let mut skipped = 0;
-    let bar = progress_bar((args.ngram.len() * args.c_grid.len()) as u64, "selecting");
-    bar.set_position(0);
     for &order in &args.ngram {
         let spec = FeatureSpec {
             max_ngram: order,
@@ -142,6 +140,7 @@ pub fn run(args: &TrainArgs) -> anyhow::Result<u8> {
             .into());
         }
         let folds = stratified_folds(data.labels(), args.folds, args.seed);
+        let bar = progress_bar(args.c_grid.len() as u64, &format!("n-gram {order}"));
         let mut best_from_here = false;
         for &c in &args.c_grid {
             let params = solver_params(args, c, &data);
