@@ -160,6 +160,7 @@ pub fn run(args: &TrainArgs) -> anyhow::Result<u8> {
             }
             candidates.push(candidate);
         }
+        bar.finish_and_clear();
         if best_from_here
             && let Some(b) = best.as_mut()
             && b.candidate.max_ngram == order
@@ -167,7 +168,6 @@ pub fn run(args: &TrainArgs) -> anyhow::Result<u8> {
             b.data = Some(data);
         }
     }
-    bar.finish_and_clear();
     let Some(Best {
         candidate: chosen,
         margins,
