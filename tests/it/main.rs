@@ -1,5 +1,6 @@
 //! Integration tests, one module per area.
 mod cli_extract;
+mod cli_learning;
 mod cpython_email;
 mod demo_corpus;
 mod eval_reference;
