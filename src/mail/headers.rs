@@ -5,6 +5,8 @@
 //! failing the whole message — and picks out what the filter uses: the subject, the sender's
 //! domain and the verdicts of an upstream `Authentication-Results` field (RFC 8601).
 
+use std::borrow::Cow;
+
 use mailparse::{MailHeader, MailHeaderMap, parse_header};
 
 /// The header fields of one entity and where its body starts.
@@ -62,6 +64,29 @@ pub fn parse_section(raw: &[u8]) -> HeaderSection<'_> {
 /// The first value of field `name`, decoded (RFC 2047 words, folding removed).
 pub fn first_value(fields: &[MailHeader<'_>], name: &str) -> Option<String> {
     fields.get_first_value(name)
+}
+
+/// The value of the first field `name`, unfolded but without RFC 2047 decoding: for the
+/// structured MIME fields (Content-Type and friends), where encoded words are not allowed
+/// (RFC 2047 §5), so decoding them would only cost time.
+pub fn first_structured<'a>(fields: &'a [MailHeader<'_>], name: &str) -> Option<Cow<'a, str>> {
+    let field = fields
+        .iter()
+        .find(|f| f.get_key_ref().eq_ignore_ascii_case(name))?;
+    let raw = field.get_value_raw();
+    let text = match std::str::from_utf8(raw) {
+        Ok(text) => Cow::Borrowed(text),
+        // RFC 5322 fields are ASCII; stray 8-bit bytes are read as Latin-1 so nothing is lost.
+        Err(_) => Cow::Owned(raw.iter().map(|&b| char::from(b)).collect()),
+    };
+    if text.contains(['\r', '\n']) {
+        // Unfolding (RFC 5322 §2.2.3): the line break goes, the whitespace after it stays.
+        Some(Cow::Owned(
+            text.chars().filter(|&c| c != '\r' && c != '\n').collect(),
+        ))
+    } else {
+        Some(text)
+    }
 }
 
 /// Domain of the first address in the `From` field, lower-cased.

@@ -6,10 +6,10 @@
 //! scanned once for its own delimiters, so the total work is linear in the message size
 //! times the (capped) depth.
 
-use mailparse::{MailHeader, MailHeaderMap, ParsedContentType, parse_content_type};
+use mailparse::{MailHeader, ParsedContentType, parse_content_type};
 use memchr::memmem;
 
-use super::headers::{HeaderSection, parse_section};
+use super::headers::{HeaderSection, first_structured, parse_section};
 use super::signals::{Signal, Signals};
 use super::transfer::TransferEncoding;
 
@@ -64,7 +64,7 @@ struct Pending<'a> {
 }
 
 fn content_type(fields: &[MailHeader<'_>], in_digest: bool) -> ParsedContentType {
-    match fields.get_first_value("Content-Type") {
+    match first_structured(fields, "Content-Type") {
         Some(value) => {
             let mut ctype = parse_content_type(&value);
             // RFC 2045 §5.2: a syntactically invalid type (no subtype) means text/plain.
@@ -118,8 +118,7 @@ fn rfc2231_value(raw: &str) -> String {
 }
 
 fn is_attachment(fields: &[MailHeader<'_>]) -> bool {
-    fields
-        .get_first_value("Content-Disposition")
+    first_structured(fields, "Content-Disposition")
         .map(|v| mailparse::parse_content_disposition(&v).disposition)
         == Some(mailparse::DispositionType::Attachment)
 }
@@ -225,9 +224,7 @@ pub fn walk<'a>(
             continue;
         }
 
-        let transfer = section
-            .fields
-            .get_first_value("Content-Transfer-Encoding")
+        let transfer = first_structured(&section.fields, "Content-Transfer-Encoding")
             .map_or(TransferEncoding::Identity, |v| {
                 TransferEncoding::from_header(&v)
             });
