@@ -15,16 +15,12 @@ use tamis::features::SparseVector;
 use tamis::train::dataset::Dataset;
 use tamis::train::svmlight::write_svmlight;
 
-/// SplitMix64: every choice below is seeded.
-struct Rng(u64);
+/// Seeded test data: every choice comes from the crate's SplitMix64.
+struct Rng(tamis::rng::SplitMix64);
 
 impl Rng {
     fn next(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
+        self.0.next_u64()
     }
     fn unit(&mut self) -> f64 {
         (self.next() >> 11) as f64 / (1u64 << 53) as f64
@@ -45,7 +41,7 @@ fn main() -> anyhow::Result<()> {
     if dims == 0 || dims > u32::MAX as usize {
         bail!("DIMS must be in 1..={}", u32::MAX);
     }
-    let mut rng = Rng(seed);
+    let mut rng = Rng(tamis::rng::SplitMix64::new(seed));
     let mut data = Vec::with_capacity(rows);
     let mut labels = Vec::with_capacity(rows);
     for _ in 0..rows {

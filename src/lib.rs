@@ -23,6 +23,7 @@ pub mod features;
 pub mod label;
 pub mod mail;
 pub mod model;
+pub mod rng;
 pub mod text;
 pub mod train;
 

@@ -5,19 +5,18 @@
 //! be byte-identical for a given seed on every platform and every release of the toolchain,
 //! which rules out generators whose output may change with a dependency upgrade.
 
-/// The golden-ratio increment of SplitMix64.
-const GAMMA: u64 = 0x9e37_79b9_7f4a_7c15;
-
 /// A deterministic stream of pseudo-random numbers.
 #[derive(Debug, Clone)]
 pub(crate) struct Rng {
-    state: u64,
+    inner: crate::rng::SplitMix64,
 }
 
 impl Rng {
     /// A generator whose whole output is fixed by `seed`.
     pub(crate) fn new(seed: u64) -> Self {
-        Rng { state: seed }
+        Rng {
+            inner: crate::rng::SplitMix64::new(seed),
+        }
     }
 
     /// A generator for item `index` of the stream seeded with `seed`.
@@ -31,11 +30,7 @@ impl Rng {
 
     /// The next 64 uniformly distributed bits.
     pub(crate) fn next_u64(&mut self) -> u64 {
-        self.state = self.state.wrapping_add(GAMMA);
-        let mut z = self.state;
-        z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-        z ^ (z >> 31)
+        self.inner.next_u64()
     }
 
     /// A number in `0..n`; zero when `n` is zero so callers need no special case.

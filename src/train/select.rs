@@ -12,31 +12,19 @@ use super::dataset::Dataset;
 use super::eval_error::EvalError;
 use super::roc::RocCurve;
 use super::solver::{ParamError, SvmParamsBuilder, fit_svm};
-
-/// A small seeded generator for fold assignment (SplitMix64, Steele et al. 2014).
-struct SplitMix(u64);
-
-impl SplitMix {
-    fn next(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9e37_79b9_7f4a_7c15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
-        z ^ (z >> 31)
-    }
-}
+use crate::rng::SplitMix64;
 
 /// Fold number (0..k) of each row: each class is shuffled with `seed` and dealt round-robin,
 /// so every fold has the class mix of the whole set (stratification).
 pub fn stratified_folds(labels: &[i8], k: usize, seed: u64) -> Vec<usize> {
     let k = k.max(1);
-    let mut rng = SplitMix(seed);
+    let mut rng = SplitMix64::new(seed);
     let mut folds = vec![0; labels.len()];
     for class in [1i8, -1] {
         let mut members: Vec<usize> = (0..labels.len()).filter(|&i| labels[i] == class).collect();
         // Fisher–Yates shuffle.
         for i in (1..members.len()).rev() {
-            let j = (rng.next() % (i as u64 + 1)) as usize;
+            let j = rng.below(i + 1);
             members.swap(i, j);
         }
         for (position, &row) in members.iter().enumerate() {

@@ -20,6 +20,7 @@
 //! times `bias`, and the primal objective counts `½ (intercept / bias)²`.
 
 use crate::features::SparseVector;
+use crate::rng::SplitMix64;
 
 use super::dataset::Dataset;
 
@@ -272,25 +273,6 @@ pub fn primal_objective(weights: &[f64], intercept: f64, ds: &Dataset, params: &
     0.5 * reg + loss
 }
 
-/// SplitMix64 (Steele, Lea and Flood, 2014): a tiny seeded generator, enough for permutations.
-struct SplitMix64(u64);
-
-impl SplitMix64 {
-    fn next_u64(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
-    }
-
-    /// Uniform in `0..n` for `n > 0` by multiply-and-shift; the bias is below 2⁻³² for any
-    /// realistic `n`.
-    fn below(&mut self, n: usize) -> usize {
-        ((u128::from(self.next_u64()) * n as u128) >> 64) as usize
-    }
-}
-
 /// The rows in one flat compressed-sparse-row block, so the inner loop walks contiguous memory
 /// instead of chasing one allocation per row.
 struct Csr {
@@ -359,7 +341,7 @@ pub fn fit_svm(ds: &Dataset, params: &SvmParams) -> FittedSvm {
     }
     let l_eff = index.len();
     let mut active_size = l_eff;
-    let mut rng = SplitMix64(params.seed());
+    let mut rng = SplitMix64::new(params.seed());
     let eps = params.tolerance();
     let shrinking = params.shrinking();
     let mut pg_max_old = f64::INFINITY;
@@ -491,7 +473,7 @@ mod tests {
 
     /// A small noisy problem built from a seeded generator.
     fn noisy(n: usize, dims: u32, seed: u64) -> Dataset {
-        let mut rng = SplitMix64(seed);
+        let mut rng = SplitMix64::new(seed);
         let mut rows = Vec::new();
         let mut labels = Vec::new();
         for _ in 0..n {

@@ -10,16 +10,12 @@ use tamis::train::stats::{try_clopper_pearson, try_clopper_pearson_upper};
 
 use crate::python;
 
-/// SplitMix64: small, seedable and enough for test data.
-struct Rng(u64);
+/// Seeded test data: every choice comes from the crate's SplitMix64.
+struct Rng(tamis::rng::SplitMix64);
 
 impl Rng {
     fn next_u64(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
+        self.0.next_u64()
     }
 
     /// Uniform in [0, 1).
@@ -115,7 +111,7 @@ print(json.dumps(out))
 
 #[test]
 fn roc_auc_and_curve_match_scikit_learn_including_ties() {
-    let mut rng = Rng(0x7A31_5EED);
+    let mut rng = Rng(tamis::rng::SplitMix64::new(0x7A31_5EED));
     let mut sets = Vec::new();
     for i in 0..320 {
         let len = 2 + rng.below(400);
@@ -189,7 +185,7 @@ print(json.dumps(out))
 /// L-BFGS, so the two optima agree up to the solvers' tolerances.
 #[test]
 fn platt_parameters_match_scikit_learn_sigmoid_calibration() {
-    let mut rng = Rng(0x0B1A_7701);
+    let mut rng = Rng(tamis::rng::SplitMix64::new(0x0B1A_7701));
     let mut sets = Vec::new();
     // (size, spam share, separation, margin scale): overlapping, well separated, imbalanced,
     // and margins beyond 30 (where scikit-learn rescales before fitting).

@@ -50,16 +50,12 @@ for cfg in configs:
 json.dump(out, sys.stdout)
 "#;
 
-/// SplitMix64, seeded, so the data set is the same on every run.
-struct Rng(u64);
+/// Seeded test data: every choice comes from the crate's SplitMix64.
+struct Rng(tamis::rng::SplitMix64);
 
 impl Rng {
     fn next(&mut self) -> u64 {
-        self.0 = self.0.wrapping_add(0x9E37_79B9_7F4A_7C15);
-        let mut z = self.0;
-        z = (z ^ (z >> 30)).wrapping_mul(0xBF58_476D_1CE4_E5B9);
-        z = (z ^ (z >> 27)).wrapping_mul(0x94D0_49BB_1331_11EB);
-        z ^ (z >> 31)
+        self.0.next_u64()
     }
     fn unit(&mut self) -> f64 {
         (self.next() >> 11) as f64 / (1u64 << 53) as f64
@@ -73,7 +69,7 @@ impl Rng {
 /// quarter spam, some labels flipped so the classes are not separable; values are sublinear
 /// counts scaled to unit length, as the featurizer produces.
 fn synthetic(rows: usize, seed: u64) -> Dataset {
-    let mut rng = Rng(seed);
+    let mut rng = Rng(tamis::rng::SplitMix64::new(seed));
     let mut data = Vec::with_capacity(rows);
     let mut labels = Vec::with_capacity(rows);
     for _ in 0..rows {
