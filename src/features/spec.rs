@@ -32,8 +32,18 @@ pub struct FeatureSpec {
     pub hash_bits: u8,
     /// Word n-grams of order 1..=`max_ngram` are used in text fields.
     pub max_ngram: u8,
+    /// The namespaces features are drawn from, by tag, in generation order.
+    pub namespaces: Vec<String>,
     /// Extraction limits, which decide how much of a message is seen.
     pub limits: ExtractLimits,
+}
+
+/// The namespace tags this binary generates, in order.
+pub fn supported_namespaces() -> Vec<String> {
+    super::Namespace::ALL
+        .iter()
+        .map(|ns| ns.tag().to_string())
+        .collect()
 }
 
 impl Default for FeatureSpec {
@@ -44,6 +54,7 @@ impl Default for FeatureSpec {
             seed: 0x7a6d_1501,
             hash_bits: 20,
             max_ngram: 2,
+            namespaces: supported_namespaces(),
             limits: ExtractLimits::default(),
         }
     }
@@ -78,6 +89,16 @@ pub enum SpecError {
     /// `max_ngram` outside 1..=4.
     #[error("max_ngram = {0} is outside the supported range 1..=4")]
     MaxNgram(u8),
+    /// The spec names namespaces other than the ones this binary generates.
+    #[error(
+        "feature namespaces {found:?} differ from this binary's {supported:?}; retrain the model with this binary"
+    )]
+    Namespaces {
+        /// Namespaces in the spec.
+        found: Vec<String>,
+        /// Namespaces this binary generates.
+        supported: Vec<String>,
+    },
     /// A zero extraction limit would see nothing.
     #[error("extraction limit `{0}` must be greater than zero")]
     ZeroLimit(&'static str),
@@ -108,6 +129,12 @@ impl FeatureSpec {
         }
         if !(1..=MAX_NGRAM_ORDER).contains(&self.max_ngram) {
             return Err(SpecError::MaxNgram(self.max_ngram));
+        }
+        if self.namespaces != supported_namespaces() {
+            return Err(SpecError::Namespaces {
+                found: self.namespaces.clone(),
+                supported: supported_namespaces(),
+            });
         }
         let limits = &self.limits;
         for (name, value) in [
@@ -149,5 +176,11 @@ mod tests {
             ..FeatureSpec::default()
         };
         assert_eq!(spec.check_supported(), Err(SpecError::HashBits(40)));
+        let mut spec = FeatureSpec::default();
+        spec.namespaces.retain(|ns| ns != "hidden");
+        assert!(matches!(
+            spec.check_supported(),
+            Err(SpecError::Namespaces { .. })
+        ));
     }
 }

@@ -337,8 +337,11 @@ mod tests {
         let bytes = encode_model(&m);
         // Rewrite the spec version inside the JSON header and fix up the checksum, as a
         // model written by a future release would look.
-        let text = String::from_utf8_lossy(&bytes).into_owned();
-        let at = text.find("\"version\":1").expect("spec version in header");
+        let needle = b"\"version\":1";
+        let at = bytes
+            .windows(needle.len())
+            .position(|w| w == needle)
+            .expect("spec version in header");
         let mut edited = bytes.clone();
         edited[at + 10] = b'7';
         let body_end = edited.len() - 4;
