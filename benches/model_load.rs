@@ -12,7 +12,9 @@ fn bench(c: &mut Criterion) {
         hash_bits: 22,
         ..FeatureSpec::default()
     };
-    let weights: Vec<f32> = (0..spec.dimensions()).map(|i| (i % 1000) as f32 / 1e3).collect();
+    let weights: Vec<f32> = (0..spec.dimensions())
+        .map(|i| (i % 1000) as f32 / 1e3)
+        .collect();
     let model = LinearModel::new(spec, weights, 0.1, None, None, TrainingSummary::default())
         .expect("valid model");
     let dir = tempfile::tempdir().expect("temp dir");
@@ -22,7 +24,9 @@ fn bench(c: &mut Criterion) {
     group.bench_function("read bytes only (baseline)", |b| {
         b.iter(|| std::fs::read(&path).expect("read"))
     });
-    group.bench_function("load_model", |b| b.iter(|| load_model(&path).expect("load")));
+    group.bench_function("load_model", |b| {
+        b.iter(|| load_model(&path).expect("load"))
+    });
     group.finish();
 }
 
