@@ -5,6 +5,7 @@
 //! `2^hash_bits` entries of its [`FeatureSpec`], so scoring never indexes out of range.
 //! The file format lives in [`file`] and is specified in `proto/MODEL_FORMAT.md`.
 
+pub mod builtin;
 pub mod explain;
 pub mod file;
 

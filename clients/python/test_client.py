@@ -1,0 +1,444 @@
+#!/usr/bin/env python3
+"""Unit tests of the tamis client codec (and of the client against an
+in-process fake server).  Each test names the section of proto/PROTOCOL.md it
+checks.  Run: python3 -m unittest test_client  (from this folder)."""
+
+from __future__ import annotations
+
+import math
+import os
+import socket
+import struct
+import sys
+import threading
+import unittest
+
+sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
+import tamis_client as tc  # noqa: E402
+
+
+def hx(s: str) -> bytes:
+    """Hex with spaces/newlines allowed."""
+    return bytes.fromhex("".join(s.split()))
+
+
+class FramingTests(unittest.TestCase):
+    """§1 Framing."""
+
+    def test_s1_length_counts_kind_and_payload(self):
+        # §1: length counts the kind byte and the payload; SEAL has no payload.
+        self.assertEqual(tc.encode_frame(tc.seal_frame()), hx("00000001 07"))
+
+    def test_s1_zero_length_is_malformed(self):
+        # §1: "A length of 0 is a protocol error (MALFORMED)."
+        with self.assertRaises(tc.FrameError) as cm:
+            tc.decode_frame(hx("00000000"))
+        self.assertEqual(cm.exception.code, tc.MALFORMED)
+
+    def test_s1_length_above_max_frame_refused_before_payload(self):
+        # §1: a frame whose length exceeds the announced maximum is refused
+        # before its payload is read -> FRAME_TOO_LARGE (only 5 bytes given).
+        with self.assertRaises(tc.FrameError) as cm:
+            tc.decode_frame(hx("00010001 06"), max_frame=65536)
+        self.assertEqual(cm.exception.code, tc.FRAME_TOO_LARGE)
+
+    def test_s1_length_equal_to_max_frame_is_fine(self):
+        # §1/§5: only a length *above* max_frame is refused.
+        data = tc.encode_frame(tc.chunk_frame(b"x" * (4096 - 5)))
+        self.assertEqual(struct.unpack(">I", data[:4])[0], 4096)
+        frame, n = tc.decode_frame(data, max_frame=4096)
+        self.assertEqual(n, len(data))
+
+    def test_s1_incomplete(self):
+        # §1: a frame is length + kind + (length-1) payload bytes.
+        with self.assertRaises(tc.Incomplete):
+            tc.decode_frame(hx("000000"))
+        with self.assertRaises(tc.Incomplete):
+            tc.decode_frame(hx("00000003 09 0000"))
+
+    def test_s1_integers_big_endian(self):
+        # §1: all integers big-endian -- PING token u64.
+        self.assertEqual(tc.encode_frame(tc.ping_frame(0x0102030405060708)),
+                         hx("00000009 09 0102030405060708"))
+
+    def test_s1_str_is_u16_length_utf8(self):
+        # §1: str is u16 length + UTF-8 bytes ("é" is 2 bytes).
+        self.assertEqual(tc.encode_frame(tc.sender_frame("é@example.org")),
+                         hx("00000011 03 000e c3a9") + b"@example.org")
+
+    def test_s1_bytes_is_u32_length_any_content(self):
+        # §1: bytes is u32 length + any content.
+        self.assertEqual(tc.encode_frame(tc.chunk_frame(b"\x00\xff\r\n")),
+                         hx("00000009 06 00000004 00ff0d0a"))
+
+    def test_s1_bytes_left_over_is_malformed(self):
+        # §1: bytes left over -> MALFORMED (SEAL with one payload byte).
+        with self.assertRaises(tc.FrameError) as cm:
+            tc.decode_frame(hx("00000002 07 00"))
+        self.assertEqual(cm.exception.code, tc.MALFORMED)
+
+    def test_s1_field_past_end_is_malformed(self):
+        # §1: a field running past the end of the frame -> MALFORMED
+        # (SENDER str announces 5 bytes, frame holds 2).
+        with self.assertRaises(tc.FrameError) as cm:
+            tc.decode_frame(hx("00000005 03 0005 6162"))
+        self.assertEqual(cm.exception.code, tc.MALFORMED)
+
+    def test_s5_bad_utf8_in_str_is_malformed(self):
+        # §5 MALFORMED: "bad UTF-8 in a str".
+        with self.assertRaises(tc.FrameError) as cm:
+            tc.decode_frame(hx("00000005 03 0002 c328"))
+        self.assertEqual(cm.exception.code, tc.MALFORMED)
+
+    def test_s1_f64_is_ieee_binary64(self):
+        # §1: f64 is IEEE-754 binary64 (big-endian); 1.5 = 3ff8000000000000.
+        self.assertEqual(tc.enc_f64(1.5), hx("3ff8000000000000"))
+
+    def test_s2_unknown_kind(self):
+        # §2: "Kinds outside these tables are UNKNOWN_KIND errors" -- 0x0b, 0x40.
+        for kind in (0x00, 0x0B, 0x3F, 0x40, 0x46, 0x4B, 0xFF):
+            with self.assertRaises(tc.FrameError) as cm:
+                tc.decode_frame(bytes([0, 0, 0, 1, kind]))
+            self.assertEqual(cm.exception.code, tc.UNKNOWN_KIND, hex(kind))
+
+    def test_s2_direction_filter(self):
+        # §2: client kinds 0x01-0x3f, server kinds 0x40-0x7f.
+        with self.assertRaises(tc.FrameError):
+            tc.decode_frame(hx("00000001 07"), direction="s2c")
+        with self.assertRaises(tc.FrameError):
+            tc.decode_frame(hx("00000001 43"), direction="c2s")
+
+    def test_decode_frames_sequence(self):
+        # §1: frames follow one another on the stream.
+        frames = tc.decode_frames(hx("00000001 07 00000001 43 00000001 4a"))
+        self.assertEqual([f.kind for f in frames], [tc.SEAL, tc.ENOUGH, tc.SERVER_BYE])
+
+
+class ClientFrameTests(unittest.TestCase):
+    """§2 client -> server frames, hand-built from the table."""
+
+    def roundtrip(self, frame: tc.Frame, expected: bytes) -> None:
+        self.assertEqual(tc.encode_frame(frame), expected)
+        back, n = tc.decode_frame(expected, direction="c2s")
+        self.assertEqual(n, len(expected))
+        self.assertEqual(back, frame)
+
+    def test_s2_hello(self):
+        # §2 HELLO: version u16, max_frame u32, client str.
+        self.roundtrip(tc.hello_frame(1, 65536, "r1"),
+                       hx("0000000c 01 0001 00010000 0002 7231"))
+
+    def test_s2_peer(self):
+        # §2 PEER: address str, port u16, greeting str.
+        self.roundtrip(tc.peer_frame("192.0.2.7", 2525, "mx.example.test"),
+                       hx("0000001f 02 0009") + b"192.0.2.7" + hx("09dd 000f")
+                       + b"mx.example.test")
+
+    def test_s2_sender_null(self):
+        # §2 SENDER: empty address for the null sender.
+        self.roundtrip(tc.sender_frame(""), hx("00000003 03 0000"))
+
+    def test_s2_recipient(self):
+        # §2 RECIPIENT: address str.
+        self.roundtrip(tc.recipient_frame("b@example.test"),
+                       hx("00000011 04 000e") + b"b@example.test")
+
+    def test_s2_field(self):
+        # §2 FIELD: name str (no colon), value bytes (raw, folding and 8-bit kept).
+        value = b" caf\xe9\r\n\tmenu"
+        self.roundtrip(tc.field_frame("Subject", value),
+                       hx("0000001b 05 0007") + b"Subject" + hx("0000000e") + value)
+
+    def test_s2_chunk_empty(self):
+        # §2 CHUNK: data bytes (may be empty).
+        self.roundtrip(tc.chunk_frame(b""), hx("00000005 06 00000000"))
+
+    def test_s2_empty_frames(self):
+        # §2 SEAL, DROP, BYE: empty payloads.
+        self.roundtrip(tc.seal_frame(), hx("00000001 07"))
+        self.roundtrip(tc.drop_frame(), hx("00000001 08"))
+        self.roundtrip(tc.bye_frame(), hx("00000001 0a"))
+
+    def test_s2_ping(self):
+        # §2 PING: token u64.
+        self.roundtrip(tc.ping_frame(2**64 - 1), hx("00000009 09 ffffffffffffffff"))
+
+    def test_s2_encoder_rejects_out_of_range(self):
+        # §1: integers have fixed widths; str length must fit u16.
+        with self.assertRaises(tc.FrameError):
+            tc.encode_frame(tc.ping_frame(2**64))
+        with self.assertRaises(tc.FrameError):
+            tc.encode_frame(tc.hello_frame(70000, 65536, "x"))
+        with self.assertRaises(tc.FrameError):
+            tc.encode_frame(tc.sender_frame("x" * 65536))
+
+
+class ServerFrameTests(unittest.TestCase):
+    """§2 server -> client frames and §4 VERDICT."""
+
+    def test_s2_welcome(self):
+        # §2 WELCOME: version u16, max_frame u32, max_message u64, server str.
+        data = hx("00000016 41 0001 00010000 0000000000a00000 0005") + b"tamis"
+        f, _ = tc.decode_frame(data, direction="s2c")
+        self.assertEqual(f.fields, {"version": 1, "max_frame": 65536,
+                                    "max_message": 10 * 1024 * 1024, "server": "tamis"})
+        self.assertEqual(tc.encode_frame(f), data)
+
+    def test_s2_enough_pong_bye(self):
+        # §2 ENOUGH (empty), PONG (u64), BYE 0x4a (empty).
+        self.assertEqual(tc.decode_frame(hx("00000001 43"))[0].kind, tc.ENOUGH)
+        self.assertEqual(tc.decode_frame(hx("00000009 44 000000000000002a"))[0]["token"], 42)
+        self.assertEqual(tc.decode_frame(hx("00000001 4a"))[0].name, "BYE")
+
+    def test_s5_fault(self):
+        # §2/§5 FAULT: code u16, fatal u8, text str.  Code 5 is non-fatal.
+        data = hx("0000000a 45 0005 00 0004") + b"big!"
+        f, _ = tc.decode_frame(data)
+        self.assertEqual((f["code"], f["fatal"], f["text"]), (5, 0, "big!"))
+        self.assertEqual(tc.FAULT_NAMES[f["code"]], "MESSAGE_TOO_LARGE")
+        self.assertEqual(tc.encode_frame(f), data)
+
+    def verdict_bytes(self) -> bytes:
+        return (hx("42 0002") + b"v7"
+                + hx("4004000000000000")                  # margin 2.5
+                + hx("3fe8000000000000")                  # probability 0.75
+                + hx("0002")                              # 2 recipients
+                + hx("000e") + b"a@example.test" + hx("01")
+                + hx("000e") + b"b@example.test" + hx("02")
+                + hx("0002")                              # 2 edits
+                + hx("01 000f") + b"X-Tamis-Verdict" + hx("0015") + b"tag; id=v7; margin=2"
+                + b"."
+                + hx("02 0007") + b"Subject" + hx("0007") + b"[junk] "
+                + hx("0001 0003") + b"url")               # 1 reason
+
+    def test_s4_verdict_decode(self):
+        # §4: VERDICT layout, actions 0..3, edit ops 1 and 2.
+        payload = self.verdict_bytes()
+        data = struct.pack(">I", len(payload)) + payload
+        f, n = tc.decode_frame(data, direction="s2c")
+        self.assertEqual(n, len(data))
+        v = tc.Verdict.from_frame(f)
+        self.assertEqual(v.verdict_id, "v7")
+        self.assertEqual((v.margin, v.probability), (2.5, 0.75))
+        self.assertEqual(v.actions, {"a@example.test": "tag", "b@example.test": "quarantine"})
+        self.assertEqual([(e.op_name, e.name) for e in v.edits],
+                         [("add", "X-Tamis-Verdict"), ("prefix_subject", "Subject")])
+        self.assertEqual(v.reasons, ["url"])
+        self.assertEqual(tc.encode_frame(f), data)
+        self.assertEqual(tc.encode_frame(v.to_frame()), data)
+
+    def test_s4_verdict_nan_not_scored(self):
+        # §4: margin/probability NaN when not scored; action 0 accept, 3 defer.
+        nan = struct.pack(">d", math.nan)
+        payload = (hx("42 0001") + b"u" + nan + nan + hx("0002")
+                   + hx("0001") + b"a" + hx("00") + hx("0001") + b"b" + hx("03")
+                   + hx("0000 0000"))
+        data = struct.pack(">I", len(payload)) + payload
+        v = tc.Verdict.from_frame(tc.decode_frame(data)[0])
+        self.assertTrue(math.isnan(v.margin) and math.isnan(v.probability))
+        self.assertFalse(v.scored)
+        self.assertEqual(v.actions, {"a": "accept", "b": "defer"})
+        self.assertEqual(tc.encode_frame(tc.decode_frame(data)[0]), data)
+
+    def test_s4_verdict_truncated_is_malformed(self):
+        # §1: a field running past the end -> MALFORMED (reasons count missing).
+        payload = self.verdict_bytes()[:-7]
+        data = struct.pack(">I", len(payload)) + payload
+        with self.assertRaises(tc.FrameError) as cm:
+            tc.decode_frame(data)
+        self.assertEqual(cm.exception.code, tc.MALFORMED)
+
+
+class SplitMessageTests(unittest.TestCase):
+    """§2 FIELD / CHUNK: what the client sends for a message."""
+
+    def test_s2_fields_raw_with_folding(self):
+        raw = (b"From: a@example.org\r\nSubject: one\r\n two\r\n"
+               b"X-8bit: caf\xe9\r\n\r\nbody line\r\n")
+        fields, body = tc.split_message(raw)
+        self.assertEqual(fields, [("From", b" a@example.org"),
+                                  ("Subject", b" one\r\n two"),
+                                  ("X-8bit", b" caf\xe9")])
+        self.assertEqual(body, b"body line\r\n")
+
+    def test_s2_lf_becomes_crlf(self):
+        # §2 CHUNK: "CRLF line ends as on the wire".
+        fields, body = tc.split_message(b"To: b@example.test\n\tc@example.test\n\nx\ny\n")
+        self.assertEqual(fields, [("To", b" b@example.test\r\n\tc@example.test")])
+        self.assertEqual(body, b"x\r\ny\r\n")
+
+    def test_no_body(self):
+        self.assertEqual(tc.split_message(b"A: 1\r\n"), ([("A", b" 1")], b""))
+
+
+class FakeServer:
+    """A scripted server on one end of a socketpair."""
+
+    def __init__(self, script):
+        self.client_sock, self.server_sock = socket.socketpair()
+        self.received: list[tc.Frame] = []
+        self.script = script
+        self.error: BaseException | None = None
+        self.thread = threading.Thread(target=self.run, daemon=True)
+        self.thread.start()
+
+    def read(self) -> tc.Frame | None:
+        buf = b""
+        while True:
+            try:
+                frame, n = tc.decode_frame(buf, direction="c2s")
+                assert n == len(buf)
+                self.received.append(frame)
+                return frame
+            except tc.Incomplete as inc:
+                data = self.server_sock.recv(inc.needed)
+                if not data:
+                    return None
+                buf += data
+
+    def write(self, kind, **fields):
+        self.server_sock.sendall(tc.encode_frame(tc.Frame(kind, fields)))
+
+    def run(self):
+        try:
+            self.script(self)
+        except BaseException as exc:  # noqa: BLE001
+            self.error = exc
+        finally:
+            self.server_sock.close()
+
+    def welcome(self, max_frame=65536):
+        f = self.read()
+        assert f.kind == tc.HELLO, f
+        self.write(tc.WELCOME, version=1, max_frame=max_frame,
+                   max_message=10 << 20, server="fake")
+
+
+def verdict_fields(recips, action=1):
+    return dict(verdict_id="id-1", margin=1.25, probability=math.nan,
+                recipients=[(r, action) for r in recips], edits=[], reasons=["r"])
+
+
+class ClientTests(unittest.TestCase):
+    """§3, §4, §5, §6 behaviour of Client against a fake server."""
+
+    def test_s3_s4_scan_with_enough(self):
+        # §2 ENOUGH: the client skips further CHUNKs and sends SEAL.
+        def script(s):
+            s.welcome()
+            while True:
+                f = s.read()
+                if f.kind == tc.CHUNK:
+                    s.write(tc.ENOUGH)
+                    break
+            import time
+            time.sleep(0.2)          # let the client see ENOUGH
+            while s.read().kind != tc.SEAL:
+                pass
+            s.write(tc.VERDICT, **verdict_fields(["b@example.test"]))
+            assert s.read().kind == tc.BYE
+            s.write(tc.SERVER_BYE)
+
+        srv = FakeServer(script)
+        c = tc.Client("test", sock=srv.client_sock, timeout=5)
+        c.hello()
+        msg = b"Subject: hi\r\n\r\n" + b"x" * 100000
+        v = c.scan("a@example.org", ["b@example.test"], msg, chunk_size=1000)
+        c.bye()
+        srv.thread.join(5)
+        self.assertIsNone(srv.error)
+        self.assertEqual(v.actions, {"b@example.test": "tag"})
+        self.assertTrue(v.body_cut_short)
+        kinds = [f.kind for f in srv.received]
+        self.assertLess(kinds.count(tc.CHUNK), 100)
+        self.assertEqual(kinds[:4], [tc.HELLO, tc.SENDER, tc.RECIPIENT, tc.FIELD])
+        self.assertEqual(srv.received[3].fields, {"name": "Subject", "value": b" hi"})
+
+    def test_s5_non_fatal_fault_then_verdict(self):
+        # §5: TOO_MANY is non-fatal; the VERDICT still follows SEAL.
+        def script(s):
+            s.welcome()
+            s.read()                                  # SENDER
+            s.write(tc.FAULT, code=tc.TOO_MANY, fatal=0, text="too many")
+            while s.read().kind != tc.SEAL:
+                pass
+            s.write(tc.VERDICT, **verdict_fields(["b@example.test"], 0))
+
+        srv = FakeServer(script)
+        c = tc.Client("test", sock=srv.client_sock, timeout=5)
+        c.hello()
+        v = c.scan("a@example.org", ["b@example.test"], b"A: b\r\n\r\nbody\r\n")
+        self.assertEqual(v.actions, {"b@example.test": "accept"})
+        self.assertEqual([f[0] for f in v.faults], [tc.TOO_MANY])
+
+    def test_s5_fatal_fault_raises(self):
+        # §5: fatal FAULT -> open message not scanned; client raises.
+        def script(s):
+            s.welcome()
+            s.read()
+            s.write(tc.FAULT, code=tc.SHUTTING_DOWN, fatal=1, text="stopping")
+
+        srv = FakeServer(script)
+        c = tc.Client("test", sock=srv.client_sock, timeout=5)
+        c.hello()
+        with self.assertRaises((tc.FatalFault, tc.ConnectionClosed)) as cm:
+            c.scan("a@example.org", ["b@example.test"], b"A: b\r\n\r\nbody\r\n")
+        self.assertTrue(cm.exception.message_open)
+        if isinstance(cm.exception, tc.FatalFault):
+            self.assertEqual(cm.exception.name, "SHUTTING_DOWN")
+
+    def test_s3_version_fault_on_hello(self):
+        # §3: version 0 -> FAULT VERSION (fatal).
+        def script(s):
+            s.read()
+            s.write(tc.FAULT, code=tc.VERSION, fatal=1, text="version 0")
+
+        srv = FakeServer(script)
+        c = tc.Client("test", sock=srv.client_sock, timeout=5)
+        with self.assertRaises(tc.FatalFault) as cm:
+            c.hello(version=0)
+        self.assertEqual(cm.exception.code, tc.VERSION)
+
+    def test_s2_ping_pong_and_drop(self):
+        # §2 PING/PONG with the same token; DROP gets no answer.
+        def script(s):
+            s.welcome()
+            f = s.read()
+            s.write(tc.PONG, token=f["token"])
+            for _ in range(3):                        # SENDER RECIPIENT DROP
+                s.read()
+            s.write(tc.ENOUGH)                        # stale, for the dropped message
+            f = s.read()
+            s.write(tc.PONG, token=f["token"])
+            assert s.read().kind == tc.BYE
+            s.write(tc.SERVER_BYE)
+
+        srv = FakeServer(script)
+        c = tc.Client("test", sock=srv.client_sock, timeout=5)
+        c.hello()
+        self.assertEqual(c.ping(77), 77)
+        c.begin("a@example.org", ["b@example.test"])
+        c.drop()
+        self.assertFalse(c._enough)
+        c.bye()
+        srv.thread.join(5)
+        self.assertIsNone(srv.error)
+        self.assertEqual([f.kind for f in srv.received],
+                         [tc.HELLO, tc.PING, tc.SENDER, tc.RECIPIENT, tc.DROP,
+                          tc.PING, tc.BYE])
+
+    def test_s6_client_refuses_out_of_order(self):
+        # §6: FIELD before any RECIPIENT is not allowed (checked locally).
+        a, b = socket.socketpair()
+        c = tc.Client("test", sock=a)
+        c.state = "ready"
+        with self.assertRaises(tc.UsageError):
+            c.field("A", b"b")
+        with self.assertRaises(tc.UsageError):
+            c.begin("a@example.org", [])
+        a.close()
+        b.close()
+
+
+if __name__ == "__main__":
+    unittest.main()
