@@ -24,6 +24,7 @@ pub mod label;
 pub mod mail;
 pub mod model;
 pub mod rng;
+pub mod server;
 pub mod text;
 pub mod train;
 

@@ -126,7 +126,7 @@ class ClientFrameTests(unittest.TestCase):
     def test_s2_hello(self):
         # §2 HELLO: version u16, max_frame u32, client str.
         self.roundtrip(tc.hello_frame(1, 65536, "r1"),
-                       hx("0000000c 01 0001 00010000 0002 7231"))
+                       hx("0000000b 01 0001 00010000 0002 7231"))
 
     def test_s2_peer(self):
         # §2 PEER: address str, port u16, greeting str.
@@ -147,7 +147,7 @@ class ClientFrameTests(unittest.TestCase):
         # §2 FIELD: name str (no colon), value bytes (raw, folding and 8-bit kept).
         value = b" caf\xe9\r\n\tmenu"
         self.roundtrip(tc.field_frame("Subject", value),
-                       hx("0000001b 05 0007") + b"Subject" + hx("0000000e") + value)
+                       hx("0000001a 05 0007") + b"Subject" + hx("0000000c") + value)
 
     def test_s2_chunk_empty(self):
         # §2 CHUNK: data bytes (may be empty).

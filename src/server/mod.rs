@@ -1,0 +1,4 @@
+//! The daemon: listeners, per-connection sessions, scoring off the async workers, limits,
+//! graceful shutdown and reload.
+
+pub mod engine;
