@@ -13,6 +13,8 @@
 //! 4. [`analyze`] — the one pipeline that runs `mail → text → features`, shared by training
 //!    and scoring so both see exactly the same vector.
 //!
+//! 5. [`proto`] — the relay protocol's frames, codec and state machine (`proto/PROTOCOL.md`).
+//!
 //! [`demo`] generates the invented demonstration corpus used by examples and benchmarks.
 #![forbid(unsafe_code)]
 
@@ -22,6 +24,7 @@ pub mod demo;
 pub mod features;
 pub mod label;
 pub mod mail;
+pub mod proto;
 pub mod model;
 pub mod rng;
 pub mod server;

@@ -292,6 +292,20 @@ _ENCODERS = {"u8": enc_u8, "u16": enc_u16, "u32": enc_u32, "u64": enc_u64,
              "f64": enc_f64, "str": enc_str, "bytes": enc_bytes}
 
 
+def _check_values(kind: int, f: dict[str, Any]) -> None:
+    """§1: "a value outside the ones this document defines" is MALFORMED:
+    an action or edit op not in §4, a FAULT code not in §5, a fatal byte
+    other than 0 or 1."""
+    if kind == FAULT:
+        _need(f["code"] in FAULT_NAMES, f"FAULT code {f['code']} not in §5")
+        _need(f["fatal"] in (0, 1), f"FAULT fatal byte {f['fatal']} is not 0 or 1")
+    elif kind == VERDICT:
+        for _addr, action in f["recipients"]:
+            _need(action in ACTION_NAMES, f"action {action} not in §4")
+        for op, _name, _value in f["edits"]:
+            _need(op in EDIT_OP_NAMES, f"edit op {op} not in §4")
+
+
 def _encode_verdict(f: dict[str, Any]) -> bytes:
     out = [enc_str(f["verdict_id"], "verdict_id"),
            enc_f64(f["margin"]), enc_f64(f["probability"])]
@@ -325,13 +339,17 @@ def _decode_verdict(r: _Reader) -> dict[str, Any]:
 def encode_payload(kind: int, fields: dict[str, Any]) -> bytes:
     """Encode the payload (without length and kind) of a frame of ``kind``."""
     if kind == VERDICT:
-        return _encode_verdict(fields)
+        out = _encode_verdict(fields)
+        _check_values(kind, fields)
+        return out
     layout = _LAYOUTS.get(kind)
     if layout is None:
         raise FrameError(UNKNOWN_KIND, f"kind 0x{kind:02x} is not in §2")
     extra = set(fields) - {n for n, _ in layout}
     _need(not extra, f"{KIND_NAMES[kind]}: unexpected field(s) {sorted(extra)}")
-    return b"".join(_ENCODERS[t](fields[n], f"{KIND_NAMES[kind]}.{n}") for n, t in layout)
+    out = b"".join(_ENCODERS[t](fields[n], f"{KIND_NAMES[kind]}.{n}") for n, t in layout)
+    _check_values(kind, fields)
+    return out
 
 
 def decode_payload(kind: int, payload: bytes) -> dict[str, Any]:
@@ -345,6 +363,7 @@ def decode_payload(kind: int, payload: bytes) -> dict[str, Any]:
             raise FrameError(UNKNOWN_KIND, f"kind 0x{kind:02x} is not in §2")
         fields = {n: getattr(r, t)(f"{KIND_NAMES[kind]}.{n}") for n, t in layout}
     r.finish()
+    _check_values(kind, fields)
     return fields
 
 
@@ -381,16 +400,21 @@ def decode_frame(buf: bytes, max_frame: int | None = None,
     Returns ``(frame, consumed_bytes)``.  Raises :class:`Incomplete` if the
     buffer holds only part of a frame, :class:`FrameError` for a frame that
     breaks §1/§2.  ``max_frame`` (if given) is checked against ``length``
-    before the payload is looked at.  ``direction`` may be ``"c2s"`` or
-    ``"s2c"`` to accept only that direction's kinds (§2)."""
+    (kind byte + payload, §1) before the payload is looked at.
+    ``direction`` may be ``"c2s"`` or ``"s2c"``: a kind of the other
+    direction's table is then OUT_OF_ORDER (§2)."""
     buf = bytes(buf)
     length = frame_length(buf, max_frame)
     if len(buf) < 4 + length:
         raise Incomplete(4 + length - len(buf))
     kind = buf[4]
-    allowed = {"c2s": CLIENT_KINDS, "s2c": SERVER_KINDS, None: KIND_NAMES}[direction]
-    if kind not in allowed:
+    if kind not in KIND_NAMES:
         raise FrameError(UNKNOWN_KIND, f"kind 0x{kind:02x}")
+    if direction is not None:
+        own = {"c2s": CLIENT_KINDS, "s2c": SERVER_KINDS}[direction]
+        if kind not in own:
+            raise FrameError(OUT_OF_ORDER,
+                             f"{KIND_NAMES[kind]} (0x{kind:02x}) comes from the other side")
     fields = decode_payload(kind, buf[5:4 + length])
     return Frame(kind, fields), 4 + length
 
@@ -481,6 +505,9 @@ class Verdict:
     #: True when the server sent ENOUGH (or MESSAGE_TOO_LARGE) and we skipped
     #: the remaining CHUNKs.
     body_cut_short: bool = False
+    #: recipients we sent that the VERDICT does not list (e.g. ignored after
+    #: TOO_MANY): the caller must decide for them (see README, questions).
+    unlisted: list[str] = dc_field(default_factory=list)
 
     @property
     def scored(self) -> bool:
@@ -519,9 +546,10 @@ def split_message(raw: bytes, crlf: bool = True) -> tuple[list[tuple[str, bytes]
 
     * ``name`` is the field name without the colon (trailing blanks before
       the colon removed);
-    * ``raw_value`` is everything after the colon, verbatim -- the leading
-      space, folding (CRLF + WSP) and 8-bit bytes kept -- without the final
-      CRLF;
+    * ``raw_value`` is what follows the colon and the blanks (SP/HTAB) right
+      after it, verbatim -- folding (CRLF + WSP), inner and trailing blanks
+      and 8-bit bytes kept -- without the final CRLF (the vectors show
+      ``From: Alice <...>`` sent as value ``Alice <...>``);
     * ``body`` is everything after the empty line that ends the header.
 
     With ``crlf=True`` (default) bare LF line ends are first turned into
@@ -562,6 +590,7 @@ def split_message(raw: bytes, crlf: bool = True) -> tuple[list[tuple[str, bytes]
     out = []
     for name, value in fields:
         value = value[:-2] if value.endswith(b"\r\n") else value.rstrip(b"\n")
+        value = value.lstrip(b" \t")
         try:
             out.append((name.decode("utf-8"), value))
         except UnicodeDecodeError:
@@ -717,6 +746,7 @@ class Client:
                     raise ConnectionClosed("stream ended inside a frame",
                                            self.message_open)
                 return None
+            self._rbuf += data
 
     def _expect(self, *kinds: int) -> Frame:
         """Read frames until one of ``kinds``; handle everything else that may
@@ -803,6 +833,7 @@ class Client:
         self._poll()
         self._enough = False
         self._faults = []
+        self._recipients = recipients
         self.send(sender_frame(sender))
         self.state = "envelope"
         for r in recipients:
@@ -814,17 +845,16 @@ class Client:
         self._require("open", what="FIELD")
         # Keep the frame within the server's max_frame: a value that cannot
         # fit is cut (the server would cut it anyway, §5 FIELD_TOO_LARGE).
-        # (4 spare bytes: see README, "does max_frame count the length prefix?")
-        room = self.server_max_frame - (4 + 1 + 2 + len(name.encode("utf-8")) + 4)
+        room = self.server_max_frame - (1 + 2 + len(name.encode("utf-8")) + 4)
         if len(value) > room:
             value = value[:max(room, 0)]
         self.send(field_frame(name, value))
 
     @property
     def max_chunk(self) -> int:
-        """The largest CHUNK data that fits the server's max_frame, under
-        either reading of max_frame (with or without the 4-byte prefix)."""
-        return self.server_max_frame - (4 + 1 + 4)
+        """The largest CHUNK data that fits the server's max_frame (which
+        bounds kind byte + payload, §1)."""
+        return self.server_max_frame - (1 + 4)
 
     def chunk(self, data: bytes) -> bool:
         """Send a piece of the body.  Returns False (and sends nothing) once
@@ -849,6 +879,8 @@ class Client:
         v = Verdict.from_frame(fr)
         v.faults = list(self._faults)
         v.body_cut_short = self._enough
+        listed = {a for a, _ in v.recipients}
+        v.unlisted = [r for r in getattr(self, "_recipients", []) if r not in listed]
         self._end_message()
         return v
 

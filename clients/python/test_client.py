@@ -54,7 +54,7 @@ class FramingTests(unittest.TestCase):
         with self.assertRaises(tc.Incomplete):
             tc.decode_frame(hx("000000"))
         with self.assertRaises(tc.Incomplete):
-            tc.decode_frame(hx("00000003 09 0000"))
+            tc.decode_frame(hx("00000009 09 0000"))
 
     def test_s1_integers_big_endian(self):
         # §1: all integers big-endian -- PING token u64.

@@ -9,6 +9,7 @@ mod html;
 pub mod invariance;
 mod mime;
 mod murmur;
+mod proto_vectors;
 mod python;
 mod solver_reference;
 mod text_normalize;
