@@ -693,11 +693,11 @@ class Client:
             self.sock.sendall(data)
         except (BrokenPipeError, ConnectionResetError) as exc:
             # The server may have sent a fatal FAULT before closing: surface it.
-            self._drain_after_failure()
-            raise ConnectionClosed(f"send failed: {exc}", self.message_open) from exc
+            was_open = self.message_open or frame.kind in (SENDER, RECIPIENT)
+            self._drain_after_failure(was_open)
+            raise ConnectionClosed(f"send failed: {exc}", was_open) from exc
 
-    def _drain_after_failure(self) -> None:
-        was_open = self.message_open
+    def _drain_after_failure(self, was_open: bool) -> None:
         try:
             self.sock.settimeout(1.0)
             while True:
@@ -908,17 +908,18 @@ class Client:
                 break                       # ENOUGH: skip the rest (§2)
         return self.seal()
 
-    def drop(self) -> None:
+    def drop(self, token: int | None = None) -> None:
         """Abandon the open message (§2 DROP).
 
         Nothing answers DROP, but the server may already have sent ENOUGH or
         a non-fatal FAULT for the dropped message.  To keep those from being
-        taken for the next message, drop() follows DROP with a PING and reads
-        up to its PONG (frames on a stream stay in order)."""
+        taken for the next message, drop() follows DROP with a PING (token
+        ``token``, or a fresh one) and reads up to its PONG (frames on a
+        stream stay in order)."""
         self._require("envelope", "open", "content", what="DROP")
         self.send(drop_frame())
         self._end_message()
-        self.ping()
+        self.ping(token)
         self._faults = []
         self._enough = False
 

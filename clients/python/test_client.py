@@ -101,12 +101,36 @@ class FramingTests(unittest.TestCase):
                 tc.decode_frame(bytes([0, 0, 0, 1, kind]))
             self.assertEqual(cm.exception.code, tc.UNKNOWN_KIND, hex(kind))
 
-    def test_s2_direction_filter(self):
-        # §2: client kinds 0x01-0x3f, server kinds 0x40-0x7f.
-        with self.assertRaises(tc.FrameError):
+    def test_s2_other_direction_is_out_of_order(self):
+        # §2: "A kind from the other direction's table (a client sending
+        # WELCOME, say) is OUT_OF_ORDER."
+        with self.assertRaises(tc.FrameError) as cm:
             tc.decode_frame(hx("00000001 07"), direction="s2c")
-        with self.assertRaises(tc.FrameError):
+        self.assertEqual(cm.exception.code, tc.OUT_OF_ORDER)
+        with self.assertRaises(tc.FrameError) as cm:
             tc.decode_frame(hx("00000001 43"), direction="c2s")
+        self.assertEqual(cm.exception.code, tc.OUT_OF_ORDER)
+
+    def test_s1_undefined_values_are_malformed(self):
+        # §1: "an action or edit op not in §4, a FAULT code not in §5, a fatal
+        # byte other than 0 or 1" is MALFORMED.
+        bad = [hx("00000006 45 000c 00 0000"),                 # FAULT code 12
+               hx("00000006 45 0000 00 0000"),                 # FAULT code 0
+               hx("00000006 45 0001 02 0000")]                 # fatal = 2
+        nan = "7ff8000000000000"
+        for action_or_op in ("recipient", "edit"):
+            payload = hx("42 0000" + nan + nan)
+            if action_or_op == "recipient":
+                payload += hx("0001 0001 61 04 0000 0000")    # action 4
+            else:
+                payload += hx("0000 0001 03 0000 0000 0000")  # edit op 3
+            bad.append(struct.pack(">I", len(payload)) + payload)
+        for data in bad:
+            with self.assertRaises(tc.FrameError, msg=data.hex()) as cm:
+                tc.decode_frame(data)
+            self.assertEqual(cm.exception.code, tc.MALFORMED, data.hex())
+        with self.assertRaises(tc.FrameError):
+            tc.encode_frame(tc.Frame(tc.FAULT, {"code": 99, "fatal": 1, "text": ""}))
 
     def test_decode_frames_sequence(self):
         # §1: frames follow one another on the stream.
@@ -256,19 +280,25 @@ class SplitMessageTests(unittest.TestCase):
         raw = (b"From: a@example.org\r\nSubject: one\r\n two\r\n"
                b"X-8bit: caf\xe9\r\n\r\nbody line\r\n")
         fields, body = tc.split_message(raw)
-        self.assertEqual(fields, [("From", b" a@example.org"),
-                                  ("Subject", b" one\r\n two"),
-                                  ("X-8bit", b" caf\xe9")])
+        self.assertEqual(fields, [("From", b"a@example.org"),
+                                  ("Subject", b"one\r\n two"),
+                                  ("X-8bit", b"caf\xe9")])
         self.assertEqual(body, b"body line\r\n")
 
     def test_s2_lf_becomes_crlf(self):
         # §2 CHUNK: "CRLF line ends as on the wire".
         fields, body = tc.split_message(b"To: b@example.test\n\tc@example.test\n\nx\ny\n")
-        self.assertEqual(fields, [("To", b" b@example.test\r\n\tc@example.test")])
+        self.assertEqual(fields, [("To", b"b@example.test\r\n\tc@example.test")])
         self.assertEqual(body, b"x\r\ny\r\n")
 
     def test_no_body(self):
-        self.assertEqual(tc.split_message(b"A: 1\r\n"), ([("A", b" 1")], b""))
+        self.assertEqual(tc.split_message(b"A: 1\r\n"), ([("A", b"1")], b""))
+
+    def test_s2_only_blanks_after_colon_removed(self):
+        # §2 FIELD + vectors/message_tag.txt: "From: Alice <...>" is sent as
+        # value "Alice <...>"; trailing blanks and folding stay.
+        fields, _ = tc.split_message(b"X-A:\t two  \r\nX-B:x\r\n\r\n")
+        self.assertEqual(fields, [("X-A", b"two  "), ("X-B", b"x")])
 
 
 class FakeServer:
@@ -352,7 +382,7 @@ class ClientTests(unittest.TestCase):
         kinds = [f.kind for f in srv.received]
         self.assertLess(kinds.count(tc.CHUNK), 100)
         self.assertEqual(kinds[:4], [tc.HELLO, tc.SENDER, tc.RECIPIENT, tc.FIELD])
-        self.assertEqual(srv.received[3].fields, {"name": "Subject", "value": b" hi"})
+        self.assertEqual(srv.received[3].fields, {"name": "Subject", "value": b"hi"})
 
     def test_s5_non_fatal_fault_then_verdict(self):
         # §5: TOO_MANY is non-fatal; the VERDICT still follows SEAL.
@@ -438,6 +468,200 @@ class ClientTests(unittest.TestCase):
             c.begin("a@example.org", [])
         a.close()
         b.close()
+
+
+# --------------------------------------------------------------------------
+# The client against the normative conversations of proto/vectors/
+# --------------------------------------------------------------------------
+
+VECTORS = os.path.join(os.path.dirname(os.path.abspath(__file__)),
+                       "..", "..", "proto", "vectors")
+
+
+class VectorServer:
+    """Plays the S: lines of a vector file and checks that the client sends
+    exactly the C: lines, in order (proto/vectors/README.md format)."""
+
+    def __init__(self, name: str):
+        self.lines = []
+        with open(os.path.join(VECTORS, name), encoding="utf-8") as fh:
+            for raw in fh:
+                text = raw.split("#", 1)[0].strip()
+                if text:
+                    side, hexpart = text.split(":", 1)
+                    self.lines.append((side, bytes.fromhex(hexpart.replace(" ", ""))))
+        self.client_sock, self.server_sock = socket.socketpair()
+        self.error: str | None = None
+        self.thread = threading.Thread(target=self.run, daemon=True)
+        self.thread.start()
+
+    def recv_exact(self, n: int) -> bytes:
+        buf = b""
+        while len(buf) < n:
+            d = self.server_sock.recv(n - len(buf))
+            if not d:
+                break
+            buf += d
+        return buf
+
+    def run(self):
+        try:
+            for i, (side, data) in enumerate(self.lines):
+                if side == "S":
+                    self.server_sock.sendall(data)
+                    continue
+                head = self.recv_exact(4)
+                got = head + self.recv_exact(struct.unpack(">I", head)[0]) if len(head) == 4 else head
+                if got != data:
+                    self.error = f"frame {i}: client sent {got.hex()} expected {data.hex()}"
+                    return
+        except OSError as exc:
+            self.error = f"server: {exc}"
+        finally:
+            self.server_sock.close()
+
+    def client(self, **kw) -> tc.Client:
+        kw.setdefault("max_frame", 65536)
+        kw.setdefault("client_name", "relay-test/1")
+        return tc.Client("vector", sock=self.client_sock, timeout=5, **kw)
+
+    def finish(self, test: unittest.TestCase):
+        self.thread.join(5)
+        test.assertIsNone(self.error)
+
+
+@unittest.skipUnless(os.path.isdir(VECTORS), "proto/vectors/ not present")
+class VectorConversationTests(unittest.TestCase):
+    """The client, driven through its API, must send exactly the C: bytes of
+    each producible conversation and understand the S: bytes."""
+
+    def test_vec_handshake(self):
+        # vectors/handshake.txt, §3.
+        srv = VectorServer("handshake.txt")
+        c = srv.client()
+        c.hello()
+        self.assertEqual((c.server_version, c.server_max_frame, c.server_max_message,
+                          c.server_name), (1, 65536, 10485760, "tamis/0.1"))
+        srv.finish(self)
+        c.close()
+
+    def test_vec_message_tag(self):
+        # vectors/message_tag.txt: PEER, 2 recipients, folded field, 2 chunks, §4.
+        srv = VectorServer("message_tag.txt")
+        c = srv.client()
+        c.hello()
+        c.peer("192.0.2.10", 52344, "mail.example.org")
+        msg = (b"From: Alice <alice@example.org>\n"
+               b"Subject: Cheap watches\n"
+               b"Received: from mx.example.org\n\tby relay.example.net\n"
+               b"\n"
+               b"Buy cheap watches now!\nLimited offer.\n")
+        v = c.scan("alice@example.org", ["bob@example.net", "carol@example.net"], msg,
+                   chunk_size=24)
+        srv.finish(self)
+        self.assertEqual(v.verdict_id, "v-0001")
+        self.assertEqual((v.margin, v.probability), (1.25, 0.875))
+        self.assertEqual(v.actions, {"bob@example.net": "tag", "carol@example.net": "tag"})
+        self.assertEqual([(e.op, e.name, e.value) for e in v.edits],
+                         [(1, "X-Tamis-Verdict", "tag; id=v-0001; margin=1.2500"),
+                          (2, "Subject", "[junk] ")])
+        self.assertEqual(v.reasons, ["cheap watches"])
+        self.assertEqual(v.unlisted, [])
+        c.close()
+
+    def test_vec_ping_and_enough(self):
+        # vectors/ping.txt: PING between and inside messages, ENOUGH (§2, §6).
+        srv = VectorServer("ping.txt")
+        c = srv.client()
+        c.hello()
+        self.assertEqual(c.ping(0x0123456789ABCDEF), 0x0123456789ABCDEF)
+        c.begin("alice@example.org", ["bob@example.net"])
+        c.ping(0xFFFFFFFFFFFFFFFF)
+        c.chunk(b"Lunch at noon?\r\n")
+        v = c.seal()
+        srv.finish(self)
+        self.assertEqual(v.actions, {"bob@example.net": "accept"})
+        self.assertEqual((v.margin, v.probability), (-3.5, 0.015625))
+        self.assertTrue(v.body_cut_short)
+        c.close()
+
+    def test_vec_drop(self):
+        # vectors/drop.txt: DROP after a chunk; PING 7 / PONG 7; BYE (§2).
+        srv = VectorServer("drop.txt")
+        c = srv.client()
+        c.hello()
+        c.begin("alice@example.org", ["bob@example.net"])
+        c.field("Subject", b"Draft")
+        c.chunk(b"Hello\r\n")
+        c.drop(token=7)
+        c.bye()
+        srv.finish(self)
+
+    def test_vec_two_messages(self):
+        # vectors/two_messages.txt: null sender, no header/body, NaN scores (§4).
+        srv = VectorServer("two_messages.txt")
+        c = srv.client()
+        c.hello()
+        v1 = c.scan("alice@example.org", ["bob@example.net"],
+                    b"Subject: Minutes\r\n\r\nSee attached.\r\n")
+        v2 = c.scan("", ["postmaster@example.net"], b"")
+        srv.finish(self)
+        self.assertEqual((v1.verdict_id, v1.reasons), ("v-0003", ["looks like ham"]))
+        self.assertTrue(math.isnan(v2.margin) and math.isnan(v2.probability))
+        self.assertFalse(v2.scored)
+        self.assertEqual(v2.actions, {"postmaster@example.net": "accept"})
+        self.assertEqual([(e.op_name, e.name, e.value) for e in v2.edits],
+                         [("add", "X-Tamis-Unscanned", "model unavailable")])
+        c.close()
+
+    def test_vec_bye(self):
+        # vectors/bye.txt: BYE 0x0a answered by BYE 0x4a.
+        srv = VectorServer("bye.txt")
+        c = srv.client()
+        c.hello()
+        c.bye()
+        srv.finish(self)
+        self.assertEqual(c.state, "closed")
+
+    def fatal(self, name, code, action, **kw):
+        srv = VectorServer(name)
+        c = srv.client(**kw)
+        with self.assertRaises(tc.FatalFault) as cm:
+            action(c)
+        self.assertEqual(cm.exception.code, code)
+        self.assertEqual(c.state, "closed")
+        srv.finish(self)
+        return cm.exception
+
+    def test_vec_fault_version(self):
+        # vectors/fault_version.txt: HELLO version 0 -> FAULT VERSION (§3).
+        self.fatal("fault_version.txt", tc.VERSION, lambda c: c.hello(version=0),
+                   client_name="relay-test/0")
+
+    def test_vec_fault_busy(self):
+        # vectors/fault_busy.txt: FAULT BUSY instead of WELCOME (§3).
+        self.fatal("fault_busy.txt", tc.BUSY, lambda c: c.hello())
+
+    def test_vec_fault_idle(self):
+        # vectors/fault_idle.txt: FAULT IDLE after silence (§7).
+        def act(c):
+            c.hello()
+            c._expect(tc.PONG)       # wait for the server's next frame
+        self.fatal("fault_idle.txt", tc.IDLE, act)
+
+    def test_vec_fault_shutting_down(self):
+        # vectors/fault_shutting_down.txt: SENDER refused (§8); the open
+        # message is reported as not scanned (§5).
+        def act(c):
+            c.hello()
+            c.scan("alice@example.org", ["bob@example.net"], b"A: b\r\n\r\nbody\r\n")
+        srv = VectorServer("fault_shutting_down.txt")
+        c = srv.client()
+        with self.assertRaises((tc.FatalFault, tc.ConnectionClosed)) as cm:
+            act(c)
+        self.assertTrue(cm.exception.message_open)
+        self.assertEqual(getattr(cm.exception, "code", tc.SHUTTING_DOWN), tc.SHUTTING_DOWN)
+        srv.finish(self)
 
 
 if __name__ == "__main__":

@@ -2,3 +2,4 @@
 //! graceful shutdown and reload.
 
 pub mod engine;
+pub mod http;
