@@ -20,11 +20,14 @@
 
 pub mod analyze;
 pub mod cli;
+pub mod config;
 pub mod demo;
 pub mod features;
 pub mod label;
 pub mod mail;
+pub mod metrics;
 pub mod model;
+pub mod policy;
 pub mod proto;
 pub mod rng;
 pub mod server;

@@ -1,6 +1,7 @@
 //! Integration tests, one module per area.
 mod cli_extract;
 mod cli_learning;
+mod config_policy;
 mod corpus_readers;
 mod cpython_email;
 mod demo_corpus;
