@@ -4,12 +4,14 @@
 //! 0 success; 1 an operational failure (I/O on output, internal error); 2 bad input (a
 //! file that is not mail, unreadable input, invalid arguments).
 
+mod check;
 mod corpus;
 mod eval;
 mod extract;
 mod features;
 mod input;
 mod score;
+mod serve;
 mod train;
 mod tune;
 
@@ -54,6 +56,10 @@ enum Command {
     Score(score::ScoreArgs),
     /// Write the feature vectors of labelled mail in svmlight/libsvm format.
     Features(features::FeaturesArgs),
+    /// Run the daemon a relay talks to (relay protocol, metrics, reload on SIGHUP).
+    Serve(serve::ServeArgs),
+    /// Send messages to a running daemon and print its verdicts.
+    Check(check::CheckArgs),
 }
 
 /// Parses the process arguments, runs the subcommand and maps its outcome to an exit code.
@@ -79,6 +85,8 @@ pub fn main() -> ExitCode {
         Command::Tune(args) => tune::run(&args),
         Command::Score(args) => score::run(&args),
         Command::Features(args) => features::run(&args),
+        Command::Serve(args) => serve::run(&args),
+        Command::Check(args) => check::run(&args),
     };
     match outcome {
         Ok(code) => ExitCode::from(code),

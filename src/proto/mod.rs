@@ -14,6 +14,7 @@
 //! `encode_frame` followed by `parse_frame` gives back the same frame and byte count.
 //! The codec knows nothing of connection state; the state machine knows nothing of bytes.
 
+pub mod client;
 pub mod error;
 pub mod frame;
 pub mod state;

@@ -42,6 +42,16 @@ impl Action {
     pub fn from_u8(value: u8) -> Option<Action> {
         Action::ALL.into_iter().find(|a| a.to_u8() == value)
     }
+
+    /// The action's name as people read it: `accept`, `tag`, `quarantine`, `defer`.
+    pub fn name(self) -> &'static str {
+        match self {
+            Action::Accept => "accept",
+            Action::Tag => "tag",
+            Action::Quarantine => "quarantine",
+            Action::Defer => "defer",
+        }
+    }
 }
 
 /// How an edit changes the message.

@@ -7,9 +7,11 @@
 use std::sync::{Arc, Mutex, RwLock};
 
 use crate::analyze::Analyzer;
+use crate::config::{FailureMode, HeaderConfig};
 use crate::features::SpecError;
 use crate::mail::MailError;
 use crate::model::LinearModel;
+use crate::policy::Policy;
 
 /// The outcome of scoring one message.
 #[derive(Debug, Clone, Copy, PartialEq)]
@@ -31,25 +33,65 @@ pub enum ScoreError {
     Spec(#[from] SpecError),
 }
 
-/// A model ready to score, with reusable analyzers.
+/// What turns a score into actions; swapped together with the model on reload.
+#[derive(Debug, Clone)]
+pub struct Decisions {
+    /// Per-domain thresholds.
+    pub policy: Policy,
+    /// Header fields added to tagged mail.
+    pub headers: HeaderConfig,
+    /// What to do with a message that cannot be scored.
+    pub on_failure: FailureMode,
+}
+
+/// A model ready to score, with reusable analyzers and the policy that reads its margins.
 #[derive(Debug)]
 pub struct Engine {
     model: LinearModel,
     /// Where the model came from, for logs and metrics.
     origin: String,
+    decisions: Decisions,
     analyzers: Mutex<Vec<Analyzer>>,
 }
 
+/// Why an engine could not be built from a model and a policy.
+#[derive(Debug, thiserror::Error)]
+pub enum EngineError {
+    /// The model's feature spec is not reproducible by this binary.
+    #[error(transparent)]
+    Spec(#[from] SpecError),
+    /// The policy reads probabilities but the model has no calibration.
+    #[error(
+        "the policy sets thresholds on probabilities but model {0} has no calibration; use margins or a calibrated model"
+    )]
+    NoCalibration(String),
+}
+
 impl Engine {
-    /// An engine for `model`; refused when this binary cannot reproduce its feature spec.
-    pub fn new(model: LinearModel, origin: impl Into<String>) -> Result<Self, SpecError> {
+    /// An engine for `model` under `decisions`; refused when this binary cannot reproduce
+    /// the model's feature spec or the policy needs a calibration the model lacks.
+    pub fn new(
+        model: LinearModel,
+        origin: impl Into<String>,
+        decisions: Decisions,
+    ) -> Result<Self, EngineError> {
+        let origin = origin.into();
         // Build one analyzer now so an unsupported spec fails at load, not at first message.
         let first = Analyzer::new(model.spec().clone())?;
+        if decisions.policy.needs_probability() && model.calibration().is_none() {
+            return Err(EngineError::NoCalibration(origin));
+        }
         Ok(Engine {
             model,
-            origin: origin.into(),
+            origin,
+            decisions,
             analyzers: Mutex::new(vec![first]),
         })
+    }
+
+    /// The policy, header settings and failure mode in force.
+    pub fn decisions(&self) -> &Decisions {
+        &self.decisions
     }
 
     /// The model in use.

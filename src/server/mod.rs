@@ -1,5 +1,8 @@
 //! The daemon: listeners, per-connection sessions, scoring off the async workers, limits,
 //! graceful shutdown and reload.
 
+pub mod build;
 pub mod engine;
 pub mod http;
+pub mod listen;
+pub mod session;

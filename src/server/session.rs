@@ -1,0 +1,436 @@
+//! One relay connection: frames in, verdicts out.
+//!
+//! Invariants: one read buffer per connection, advanced only past whole frames; a declared
+//! frame length is checked against the limit before its payload is waited for; the message
+//! being assembled never grows past the scan limit (bytes beyond it are read and dropped);
+//! scoring runs on a blocking thread with the engine the message started with. Every error
+//! in a session ends in that session (logged and counted), never in the listener.
+
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+
+use bytes::{Buf, BytesMut};
+use tokio::io::{AsyncRead, AsyncReadExt, AsyncWrite, AsyncWriteExt};
+use tokio_util::sync::CancellationToken;
+
+use super::engine::{Engine, SharedEngine};
+use crate::config::Limits as ConfigLimits;
+use crate::metrics::Metrics;
+use crate::policy::{self, Action, HeaderEdit, UnscannedReason};
+use crate::proto::{
+    Edit, EditOp, FaultCode, Frame, Keep, Limits, MIN_MAX_FRAME, RecipientAction, SessionState,
+    Verdict, encode_frame_within, parse_frame,
+};
+
+/// Everything a session needs from the daemon.
+pub struct Context {
+    /// The engine in force (swapped by reloads).
+    pub engine: SharedEngine,
+    /// The metrics registry.
+    pub metrics: Arc<Metrics>,
+    /// Connection and message limits.
+    pub limits: ConfigLimits,
+    /// The name sent in `WELCOME`.
+    pub server_name: String,
+    /// Cancelled when the daemon shuts down.
+    pub shutdown: CancellationToken,
+}
+
+impl Context {
+    fn protocol_limits(&self) -> Limits {
+        Limits {
+            max_frame: self.limits.max_frame_bytes,
+            max_message: self.limits.max_message_bytes,
+            max_fields: self.limits.max_fields,
+            max_recipients: self.limits.max_recipients,
+            max_field_value: self.limits.max_field_bytes,
+        }
+    }
+}
+
+/// The message being assembled.
+#[derive(Default)]
+struct Message {
+    recipients: Vec<String>,
+    raw: Vec<u8>,
+    body_started: bool,
+    enough_sent: bool,
+    received: u64,
+}
+
+enum Flow {
+    Continue,
+    Close,
+}
+
+/// Serves one connection until it closes, fails or the daemon stops.
+pub async fn serve_connection<S>(stream: S, peer: String, ctx: Arc<Context>)
+where
+    S: AsyncRead + AsyncWrite + Unpin + Send,
+{
+    let _open = ctx.metrics.connection_opened();
+    let mut session = Session {
+        state: SessionState::new(ctx.protocol_limits()),
+        stream,
+        read: BytesMut::with_capacity(16 * 1024),
+        write: BytesMut::with_capacity(1024),
+        message: Message::default(),
+        ctx,
+    };
+    if let Err(e) = session.run().await {
+        tracing::debug!(peer = %peer, error = %e, "connection ended with an I/O error");
+    }
+}
+
+struct Session<S> {
+    ctx: Arc<Context>,
+    state: SessionState,
+    stream: S,
+    read: BytesMut,
+    write: BytesMut,
+    message: Message,
+}
+
+impl<S> Session<S>
+where
+    S: AsyncRead + AsyncWrite + Unpin + Send,
+{
+    async fn run(&mut self) -> std::io::Result<()> {
+        let max_frame = self.ctx.limits.max_frame_bytes;
+        loop {
+            loop {
+                match parse_frame(&self.read, max_frame) {
+                    Ok(Some((frame, used))) => {
+                        self.read.advance(used);
+                        if let Flow::Close = self.handle(frame).await? {
+                            return self.finish().await;
+                        }
+                    }
+                    Ok(None) => break,
+                    Err(e) => {
+                        let code = e.code();
+                        self.fault(code, true, &e.to_string()).await?;
+                        return self.finish().await;
+                    }
+                }
+            }
+            let stopping = self.ctx.shutdown.is_cancelled();
+            if stopping && !self.state.message_open() {
+                self.send(&Frame::ServerBye).await?;
+                return self.finish().await;
+            }
+            let limits = &self.ctx.limits;
+            let wait = if self.read.is_empty() {
+                limits.idle_timeout
+            } else {
+                limits.read_timeout
+            };
+            let shutdown = self.ctx.shutdown.clone();
+            tokio::select! {
+                read = tokio::time::timeout(wait, self.stream.read_buf(&mut self.read)) => match read {
+                    Err(_elapsed) => {
+                        let text = if self.read.is_empty() {
+                            format!("no frame for {}", crate::config::duration::display(wait))
+                        } else {
+                            format!("frame not completed within {}", crate::config::duration::display(wait))
+                        };
+                        self.fault(FaultCode::Idle, true, &text).await?;
+                        return self.finish().await;
+                    }
+                    // End of stream: an open message is abandoned (PROTOCOL.md §6).
+                    Ok(Ok(0)) => return Ok(()),
+                    Ok(Ok(_)) => {}
+                    Ok(Err(e)) => return Err(e),
+                },
+                _ = shutdown.cancelled(), if !stopping => {}
+            }
+        }
+    }
+
+    async fn finish(&mut self) -> std::io::Result<()> {
+        self.stream.flush().await?;
+        self.stream.shutdown().await
+    }
+
+    async fn send(&mut self, frame: &Frame) -> std::io::Result<()> {
+        let limit = self.state.peer_max_frame().unwrap_or(MIN_MAX_FRAME);
+        self.write.clear();
+        if let Err(e) = encode_frame_within(frame, limit, &mut self.write) {
+            tracing::warn!(error = %e, "a reply did not fit the client's frame limit");
+            return Err(std::io::Error::other(e.to_string()));
+        }
+        self.stream.write_all(&self.write).await?;
+        self.stream.flush().await
+    }
+
+    async fn fault(&mut self, code: FaultCode, fatal: bool, text: &str) -> std::io::Result<()> {
+        self.ctx.metrics.protocol_error(code.name());
+        tracing::debug!(code = code.name(), fatal, text, "fault");
+        let mut text = text.to_string();
+        // A fault must fit the smallest frame a client may announce.
+        text.truncate(1024);
+        while !text.is_char_boundary(text.len()) {
+            text.pop();
+        }
+        self.send(&Frame::Fault { code, fatal, text }).await
+    }
+
+    async fn handle(&mut self, frame: Frame) -> std::io::Result<Flow> {
+        let accepted = match self.state.accept_client(&frame) {
+            Ok(a) => a,
+            Err(e) => {
+                self.fault(e.code(), true, &e.to_string()).await?;
+                return Ok(Flow::Close);
+            }
+        };
+        for notice in &accepted.notices {
+            let text = match notice {
+                FaultCode::MessageTooLarge => {
+                    "message larger than the scan limit; the rest is not read"
+                }
+                FaultCode::TooMany => "too many recipients or fields; the extra ones are ignored",
+                FaultCode::FieldTooLarge => "header field value cut at the limit",
+                _ => "notice",
+            };
+            self.fault(*notice, false, text).await?;
+        }
+        let keep = |data: &[u8]| -> usize {
+            match accepted.keep {
+                Keep::All => data.len(),
+                Keep::Prefix(n) => n.min(data.len()),
+                Keep::Nothing => 0,
+            }
+        };
+        match frame {
+            Frame::Hello { .. } => {
+                if let Some(welcome) = self.state.welcome(&self.ctx.server_name) {
+                    self.send(&welcome).await?;
+                }
+            }
+            Frame::Peer { .. } => {}
+            Frame::Sender { .. } => {
+                if self.ctx.shutdown.is_cancelled() {
+                    self.fault(
+                        FaultCode::ShuttingDown,
+                        true,
+                        "the daemon is stopping; retry later",
+                    )
+                    .await?;
+                    return Ok(Flow::Close);
+                }
+                self.message = Message::default();
+            }
+            Frame::Recipient { address } if !matches!(accepted.keep, Keep::Nothing) => {
+                self.message.recipients.push(address);
+            }
+            Frame::Field { name, value } => {
+                let n = keep(&value);
+                if n > 0 || matches!(accepted.keep, Keep::All) {
+                    let room = self.scan_room();
+                    let m = &mut self.message;
+                    if room > name.len() + 4 {
+                        m.raw.extend_from_slice(name.as_bytes());
+                        m.raw.extend_from_slice(b": ");
+                        let take = n.min(room - name.len() - 4);
+                        m.raw.extend_from_slice(&value[..take]);
+                        m.raw.extend_from_slice(b"\r\n");
+                    }
+                }
+            }
+            Frame::Chunk { data } => {
+                if !self.message.body_started {
+                    self.message.raw.extend_from_slice(b"\r\n");
+                    self.message.body_started = true;
+                }
+                let n = keep(&data).min(self.scan_room());
+                self.message.raw.extend_from_slice(&data[..n]);
+                self.message.received += data.len() as u64;
+                if !self.message.enough_sent && self.scan_room() == 0 {
+                    self.message.enough_sent = true;
+                    self.send(&Frame::Enough).await?;
+                }
+            }
+            Frame::Seal => {
+                if !self.message.body_started {
+                    self.message.raw.extend_from_slice(b"\r\n");
+                }
+                let verdict = self.decide().await;
+                self.message = Message::default();
+                self.send(&Frame::Verdict(verdict)).await?;
+            }
+            Frame::Drop => self.message = Message::default(),
+            Frame::Ping { token } => self.send(&Frame::Pong { token }).await?,
+            Frame::ClientBye => {
+                self.send(&Frame::ServerBye).await?;
+                return Ok(Flow::Close);
+            }
+            // Server kinds from a client are refused by the state machine above.
+            _ => {}
+        }
+        Ok(Flow::Continue)
+    }
+
+    /// Bytes the message may still grow by: the engine's raw scan limit, never more than the
+    /// configured message limit.
+    fn scan_room(&self) -> usize {
+        let engine = self.ctx.engine.current();
+        let cap = (engine.model().spec().limits.max_raw_bytes as u64)
+            .min(self.ctx.limits.max_message_bytes) as usize;
+        cap.saturating_sub(self.message.raw.len())
+    }
+
+    async fn decide(&mut self) -> Verdict {
+        let engine = self.ctx.engine.current();
+        let raw = std::mem::take(&mut self.message.raw);
+        let recipients = std::mem::take(&mut self.message.recipients);
+        let bytes = raw.len() as u64;
+        let started = Instant::now();
+        let scorer = Arc::clone(&engine);
+        let scored = tokio::task::spawn_blocking(move || scorer.score(&raw)).await;
+        let seconds = started.elapsed().as_secs_f64();
+        let verdict_id = policy::verdict_id();
+        let d = engine.decisions();
+        let (decisions, edits, margin, probability, reasons) = match scored {
+            Ok(Ok(score)) => {
+                let decisions = d
+                    .policy
+                    .decide(&recipients, score.margin, score.probability);
+                let tagged = decisions.iter().any(|(_, a)| *a == Action::Tag);
+                let edits = if tagged {
+                    d.policy
+                        .header_edits(&d.headers, &verdict_id, Action::Tag, score.margin)
+                } else {
+                    Vec::new()
+                };
+                self.ctx
+                    .metrics
+                    .record_decisions(&decisions, score.margin, seconds, bytes);
+                let reasons = vec![format!("margin {}", policy::format_margin(score.margin))];
+                (decisions, edits, score.margin, score.probability, reasons)
+            }
+            failed => {
+                let why = match failed {
+                    Ok(Err(e)) => e.to_string(),
+                    Err(e) => format!("scoring task failed: {e}"),
+                    Ok(Ok(_)) => String::new(),
+                };
+                let reason = UnscannedReason::ScanFailed;
+                self.ctx.metrics.unscanned(reason);
+                tracing::warn!(verdict_id = %verdict_id, error = %why, "message not scanned");
+                let decisions = d.policy.unscanned(&recipients, d.on_failure);
+                let edits = d.policy.unscanned_edits(d.on_failure, reason);
+                (
+                    decisions,
+                    edits,
+                    f64::NAN,
+                    None,
+                    vec![format!("not scanned: {why}")],
+                )
+            }
+        };
+        log_verdict(&verdict_id, &decisions, margin, seconds, &engine);
+        Verdict {
+            verdict_id,
+            margin,
+            probability: probability.unwrap_or(f64::NAN),
+            recipients: decisions
+                .into_iter()
+                .map(|(address, action)| RecipientAction {
+                    address,
+                    action: wire_action(action),
+                })
+                .collect(),
+            edits: edits.iter().map(wire_edit).collect(),
+            reasons,
+        }
+    }
+}
+
+fn log_verdict(
+    id: &str,
+    decisions: &[(String, Action)],
+    margin: f64,
+    seconds: f64,
+    engine: &Engine,
+) {
+    let strongest = decisions
+        .iter()
+        .map(|(_, a)| *a)
+        .max_by_key(|a| a.code())
+        .unwrap_or(Action::Accept);
+    let domain = decisions
+        .first()
+        .and_then(|(r, _)| policy::domain::recipient_domain(r))
+        .unwrap_or_default();
+    tracing::info!(
+        verdict_id = %id,
+        domain = %domain,
+        action = strongest.as_str(),
+        margin = margin,
+        duration_ms = seconds * 1e3,
+        model = engine.origin(),
+        "verdict"
+    );
+}
+
+fn wire_action(action: Action) -> crate::proto::Action {
+    match action {
+        Action::Accept => crate::proto::Action::Accept,
+        Action::Tag => crate::proto::Action::Tag,
+        Action::Quarantine => crate::proto::Action::Quarantine,
+        Action::Defer => crate::proto::Action::Defer,
+    }
+}
+
+fn wire_edit(edit: &HeaderEdit) -> Edit {
+    match edit {
+        HeaderEdit::Add { name, value } => Edit {
+            op: EditOp::AddField,
+            name: name.clone(),
+            value: value.clone(),
+        },
+        HeaderEdit::PrefixSubject { value } => Edit {
+            op: EditOp::PrefixSubject,
+            name: "Subject".to_string(),
+            value: value.clone(),
+        },
+    }
+}
+
+/// How long a refused connection waits for its `HELLO` before being closed.
+pub const BUSY_HELLO_WAIT: Duration = Duration::from_secs(5);
+
+/// Answers a connection over the limit: reads its `HELLO` (PROTOCOL.md §3), replies
+/// `FAULT BUSY` and closes.
+pub async fn refuse_busy<S>(mut stream: S, metrics: Arc<Metrics>)
+where
+    S: AsyncRead + AsyncWrite + Unpin + Send,
+{
+    let mut buf = BytesMut::with_capacity(256);
+    let hello = tokio::time::timeout(BUSY_HELLO_WAIT, async {
+        loop {
+            match parse_frame(&buf, MIN_MAX_FRAME) {
+                Ok(Some(_)) | Err(_) => return true,
+                Ok(None) => {}
+            }
+            match stream.read_buf(&mut buf).await {
+                Ok(0) | Err(_) => return false,
+                Ok(_) => {}
+            }
+        }
+    })
+    .await;
+    metrics.protocol_error(FaultCode::Busy.name());
+    if let Ok(true) = hello {
+        let mut out = BytesMut::new();
+        let frame = Frame::Fault {
+            code: FaultCode::Busy,
+            fatal: true,
+            text: "connection limit reached; retry later".to_string(),
+        };
+        if encode_frame_within(&frame, MIN_MAX_FRAME, &mut out).is_ok() {
+            let _ = stream.write_all(&out).await;
+        }
+    }
+    let _ = stream.shutdown().await;
+}
