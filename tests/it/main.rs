@@ -4,6 +4,7 @@ mod cli_learning;
 mod config_policy;
 mod corpus_readers;
 mod cpython_email;
+mod daemon;
 mod demo_corpus;
 mod eval_reference;
 mod html;
