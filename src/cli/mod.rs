@@ -5,6 +5,7 @@
 //! file that is not mail, unreadable input, invalid arguments).
 
 mod check;
+mod config_check;
 mod corpus;
 mod eval;
 mod extract;
@@ -60,6 +61,9 @@ enum Command {
     Serve(serve::ServeArgs),
     /// Send messages to a running daemon and print its verdicts.
     Check(check::CheckArgs),
+    /// Work with configuration files.
+    #[command(subcommand)]
+    Config(config_check::ConfigCommand),
 }
 
 /// Parses the process arguments, runs the subcommand and maps its outcome to an exit code.
@@ -87,6 +91,7 @@ pub fn main() -> ExitCode {
         Command::Features(args) => features::run(&args),
         Command::Serve(args) => serve::run(&args),
         Command::Check(args) => check::run(&args),
+        Command::Config(command) => config_check::run(&command),
     };
     match outcome {
         Ok(code) => ExitCode::from(code),

@@ -708,3 +708,115 @@ async fn metrics_pass_promtool_and_are_scraped_by_prometheus() {
     .expect("task");
     assert!(running.stop().await);
 }
+
+fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .expect("bind")
+        .local_addr()
+        .expect("addr")
+        .port()
+}
+
+fn metric(status: SocketAddr, prefix: &str) -> Option<f64> {
+    let text = http_get(status, "/metrics");
+    text.lines()
+        .find(|l| l.starts_with(prefix))
+        .and_then(|l| l.rsplit(' ').next())
+        .and_then(|v| v.parse().ok())
+}
+
+#[test]
+fn a_garbage_model_before_sighup_leaves_the_old_model_serving() {
+    let dir = tempfile::tempdir().expect("temp dir");
+    let model_path = dir.path().join("model.tamis");
+    tamis::model::file::save_model(model(), &model_path).expect("save");
+    let (relay, status) = (free_port(), free_port());
+    let config = dir.path().join("tamis.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "metrics = \"127.0.0.1:{status}\"\n[listen]\ntcp = \"127.0.0.1:{relay}\"\n[model]\npath = \"model.tamis\"\n"
+        ),
+    )
+    .expect("write config");
+    let check = std::process::Command::new(env!("CARGO_BIN_EXE_tamis"))
+        .args(["config", "check"])
+        .arg(&config)
+        .output()
+        .expect("config check");
+    assert!(
+        check.status.success(),
+        "{}",
+        String::from_utf8_lossy(&check.stderr)
+    );
+    let mut daemon = std::process::Command::new(env!("CARGO_BIN_EXE_tamis"))
+        .arg("serve")
+        .arg("--config")
+        .arg(&config)
+        .stdout(std::process::Stdio::null())
+        .stderr(std::process::Stdio::null())
+        .spawn()
+        .expect("start the daemon");
+    let status: SocketAddr = format!("127.0.0.1:{status}").parse().expect("addr");
+    let relay: SocketAddr = format!("127.0.0.1:{relay}").parse().expect("addr");
+    let mut ready = false;
+    for _ in 0..100 {
+        std::thread::sleep(Duration::from_millis(100));
+        if TcpStream::connect(status).is_ok()
+            && http_get(status, "/readyz").starts_with("HTTP/1.1 200")
+        {
+            ready = true;
+            break;
+        }
+    }
+    assert!(ready, "daemon did not become ready");
+    let scan = || {
+        let mut client =
+            Client::connect(&relay.to_string(), Duration::from_secs(20)).expect("connect");
+        client
+            .scan("a@example.net", &["b@example.org".to_string()], &message(2))
+            .expect("verdict")
+            .margin
+    };
+    let before = scan();
+    std::fs::write(&model_path, b"this is not a model").expect("overwrite");
+    let hup = |pid: u32| {
+        let ok = std::process::Command::new("kill")
+            .args(["-HUP", &pid.to_string()])
+            .status()
+            .expect("kill")
+            .success();
+        assert!(ok);
+    };
+    hup(daemon.id());
+    let failure = "tamis_reloads_total{outcome=\"failure\"}";
+    let mut counted = None;
+    for _ in 0..100 {
+        std::thread::sleep(Duration::from_millis(100));
+        counted = metric(status, failure);
+        if counted == Some(1.0) {
+            break;
+        }
+    }
+    assert_eq!(counted, Some(1.0), "the failed reload is counted");
+    assert_eq!(scan(), before, "the old model still serves");
+    tamis::model::file::save_model(model(), &model_path).expect("restore");
+    hup(daemon.id());
+    let success = "tamis_reloads_total{outcome=\"success\"}";
+    let mut counted = None;
+    for _ in 0..100 {
+        std::thread::sleep(Duration::from_millis(100));
+        counted = metric(status, success);
+        if counted == Some(1.0) {
+            break;
+        }
+    }
+    assert_eq!(counted, Some(1.0), "the good reload is counted");
+    let term = std::process::Command::new("kill")
+        .args(["-TERM", &daemon.id().to_string()])
+        .status()
+        .expect("kill");
+    assert!(term.success());
+    let exit = daemon.wait().expect("wait");
+    assert!(exit.success(), "graceful exit: {exit:?}");
+}
