@@ -7,6 +7,7 @@
 mod check;
 mod config_check;
 mod corpus;
+mod demo;
 mod eval;
 mod extract;
 mod features;
@@ -61,6 +62,8 @@ enum Command {
     Serve(serve::ServeArgs),
     /// Send messages to a running daemon and print its verdicts.
     Check(check::CheckArgs),
+    /// Run the whole story on invented mail: corpus, training, daemon, verdicts per domain.
+    Demo(demo::DemoArgs),
     /// Work with configuration files.
     #[command(subcommand)]
     Config(config_check::ConfigCommand),
@@ -92,6 +95,7 @@ pub fn main() -> ExitCode {
         Command::Serve(args) => serve::run(&args),
         Command::Check(args) => check::run(&args),
         Command::Config(command) => config_check::run(&command),
+        Command::Demo(args) => demo::run(&args),
     };
     match outcome {
         Ok(code) => ExitCode::from(code),

@@ -820,3 +820,30 @@ fn a_garbage_model_before_sighup_leaves_the_old_model_serving() {
     let exit = daemon.wait().expect("wait");
     assert!(exit.success(), "graceful exit: {exit:?}");
 }
+
+#[test]
+fn tamis_demo_prints_a_verdict_table_per_domain() {
+    let dir = tempfile::tempdir().expect("temp dir");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_tamis"))
+        .args(["demo", "--messages", "80", "--dir"])
+        .arg(dir.path())
+        .output()
+        .expect("run tamis demo");
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+    let text = String::from_utf8_lossy(&out.stdout);
+    for domain in ["harbourhost.example", "uni-lindqvist.test"] {
+        assert!(text.contains(domain), "{text}");
+    }
+    assert!(text.contains("/metrics"));
+    let rows: usize = text
+        .lines()
+        .filter(|l| l.contains(".example ") || l.contains(".test "))
+        .filter_map(|l| l.split_whitespace().nth(1)?.parse::<usize>().ok())
+        .sum();
+    assert_eq!(rows, 80, "every streamed message is in the table:\n{text}");
+    assert!(dir.path().join("model.tamis").exists());
+}
