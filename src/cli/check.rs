@@ -73,7 +73,7 @@ pub fn run(args: &CheckArgs) -> anyhow::Result<u8> {
             actions: verdict
                 .recipients
                 .iter()
-                .map(|r| (r.address.as_str(), r.action.name()))
+                .map(|r| (r.address.as_str(), r.action.as_str()))
                 .collect(),
             margin: verdict.margin.is_finite().then_some(verdict.margin),
             probability: verdict

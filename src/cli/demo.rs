@@ -111,7 +111,7 @@ pub fn run(args: &DemoArgs) -> anyhow::Result<u8> {
             .recipients
             .first()
             .map_or(Action::Defer, |r| r.action)
-            .name();
+            .as_str();
         let label = if message.label == Label::Spam {
             "junk"
         } else {

@@ -28,54 +28,9 @@ pub use verdict::{
     HeaderEdit, UNSCANNED_FIELD, UnscannedReason, VERDICT_FIELD, format_margin, verdict_id,
 };
 
-/// What happens to a message for one recipient (`proto/PROTOCOL.md` §4, action codes).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
-pub enum Action {
-    /// Deliver unchanged (code 0).
-    Accept,
-    /// Deliver with the header edits applied (code 1).
-    Tag,
-    /// Do not deliver; tamis keeps the message (code 2).
-    Quarantine,
-    /// Answer the SMTP client with a temporary failure so it retries (code 3).
-    Defer,
-}
-
-impl Action {
-    /// Every action, in code order.
-    pub const ALL: [Action; 4] = [
-        Action::Accept,
-        Action::Tag,
-        Action::Quarantine,
-        Action::Defer,
-    ];
-
-    /// The action's code in a `VERDICT` frame.
-    pub fn code(self) -> u8 {
-        match self {
-            Action::Accept => 0,
-            Action::Tag => 1,
-            Action::Quarantine => 2,
-            Action::Defer => 3,
-        }
-    }
-
-    /// The action's name in header fields, logs and metric labels.
-    pub fn as_str(self) -> &'static str {
-        match self {
-            Action::Accept => "accept",
-            Action::Tag => "tag",
-            Action::Quarantine => "quarantine",
-            Action::Defer => "defer",
-        }
-    }
-}
-
-impl fmt::Display for Action {
-    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.write_str(self.as_str())
-    }
-}
+/// What happens to a message for one recipient: the protocol's own action type
+/// (`proto/PROTOCOL.md` §4), so policy and wire can never disagree.
+pub use crate::proto::Action;
 
 /// What a section's thresholds are compared with.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]

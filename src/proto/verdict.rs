@@ -11,7 +11,7 @@ use super::error::EncodeError;
 use super::frame::{WireResult, Writer, bad_value, parse_f64, parse_list, parse_str};
 
 /// What the relay does with the message for one recipient.
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
 #[repr(u8)]
 pub enum Action {
     /// Deliver unchanged.
@@ -43,14 +43,26 @@ impl Action {
         Action::ALL.into_iter().find(|a| a.to_u8() == value)
     }
 
-    /// The action's name as people read it: `accept`, `tag`, `quarantine`, `defer`.
-    pub fn name(self) -> &'static str {
+    /// The wire value (the same as [`Action::to_u8`]).
+    pub fn code(self) -> u8 {
+        self.to_u8()
+    }
+
+    /// The action's name in header fields, logs and metric labels: `accept`, `tag`,
+    /// `quarantine`, `defer`.
+    pub fn as_str(self) -> &'static str {
         match self {
             Action::Accept => "accept",
             Action::Tag => "tag",
             Action::Quarantine => "quarantine",
             Action::Defer => "defer",
         }
+    }
+}
+
+impl std::fmt::Display for Action {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.write_str(self.as_str())
     }
 }
 

@@ -104,13 +104,13 @@ pub async fn start(
         let listener = TcpListener::bind(addr).await?;
         running.tcp = Some(listener.local_addr()?);
         let (ctx, permits, tracker2) = (Arc::clone(&ctx), Arc::clone(&permits), tracker.clone());
-        tracker.spawn(accept_tcp(listener, ctx, permits, tracker2));
+        tracker.spawn(accept_loop(listener, ctx, permits, tracker2));
     }
     if let Some(unix) = &config.listen.unix {
         let listener = bind_unix(&unix.path, unix.mode)?;
         running.unix = Some(unix.path.clone());
         let (ctx, permits, tracker2) = (Arc::clone(&ctx), Arc::clone(&permits), tracker.clone());
-        tracker.spawn(accept_unix(listener, ctx, permits, tracker2));
+        tracker.spawn(accept_loop(listener, ctx, permits, tracker2));
     }
     if let Some(addr) = config.metrics {
         let listener = TcpListener::bind(addr).await?;
@@ -146,32 +146,38 @@ fn bind_unix(path: &Path, mode: u32) -> std::io::Result<UnixListener> {
 /// Back-off after an accept error (out of descriptors, for instance), as mini-redis does.
 const ACCEPT_BACKOFF: Duration = Duration::from_millis(50);
 
-async fn accept_tcp(
-    listener: TcpListener,
-    ctx: Arc<Context>,
-    permits: Arc<Semaphore>,
-    tracker: TaskTracker,
-) {
-    loop {
-        let accepted = tokio::select! {
-            _ = ctx.shutdown.cancelled() => return,
-            accepted = listener.accept() => accepted,
-        };
-        match accepted {
-            Ok((stream, peer)) => {
-                let _ = stream.set_nodelay(true);
-                dispatch(stream, peer.to_string(), &ctx, &permits, &tracker);
-            }
-            Err(e) => {
-                tracing::warn!(error = %e, "accept failed");
-                tokio::time::sleep(ACCEPT_BACKOFF).await;
-            }
-        }
+/// A listener the accept loop can take connections from.
+trait Acceptor: Send + 'static {
+    type Stream: tokio::io::AsyncRead + tokio::io::AsyncWrite + Unpin + Send + 'static;
+
+    /// The next connection and a description of its peer.
+    fn next(
+        &self,
+    ) -> impl std::future::Future<Output = std::io::Result<(Self::Stream, String)>> + Send;
+}
+
+impl Acceptor for TcpListener {
+    type Stream = tokio::net::TcpStream;
+
+    async fn next(&self) -> std::io::Result<(Self::Stream, String)> {
+        let (stream, peer) = self.accept().await?;
+        // Verdict frames are small and latency matters more than packet count.
+        let _ = stream.set_nodelay(true);
+        Ok((stream, peer.to_string()))
     }
 }
 
-async fn accept_unix(
-    listener: UnixListener,
+impl Acceptor for UnixListener {
+    type Stream = tokio::net::UnixStream;
+
+    async fn next(&self) -> std::io::Result<(Self::Stream, String)> {
+        let (stream, _) = self.accept().await?;
+        Ok((stream, "unix".to_string()))
+    }
+}
+
+async fn accept_loop<L: Acceptor>(
+    listener: L,
     ctx: Arc<Context>,
     permits: Arc<Semaphore>,
     tracker: TaskTracker,
@@ -179,10 +185,10 @@ async fn accept_unix(
     loop {
         let accepted = tokio::select! {
             _ = ctx.shutdown.cancelled() => return,
-            accepted = listener.accept() => accepted,
+            accepted = listener.next() => accepted,
         };
         match accepted {
-            Ok((stream, _)) => dispatch(stream, "unix".to_string(), &ctx, &permits, &tracker),
+            Ok((stream, peer)) => dispatch(stream, peer, &ctx, &permits, &tracker),
             Err(e) => {
                 tracing::warn!(error = %e, "accept failed");
                 tokio::time::sleep(ACCEPT_BACKOFF).await;

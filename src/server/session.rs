@@ -97,11 +97,15 @@ where
 {
     async fn run(&mut self) -> std::io::Result<()> {
         let max_frame = self.ctx.limits.max_frame_bytes;
+        // When the frame now being received began to arrive: a frame must be complete within
+        // the read timeout however slowly its bytes trickle in.
+        let mut frame_started: Option<Instant> = None;
         loop {
             loop {
                 match parse_frame(&self.read, max_frame) {
                     Ok(Some((frame, used))) => {
                         self.read.advance(used);
+                        frame_started = None;
                         if let Flow::Close = self.handle(frame).await? {
                             return self.finish().await;
                         }
@@ -123,16 +127,20 @@ where
             let wait = if self.read.is_empty() {
                 limits.idle_timeout
             } else {
-                limits.read_timeout
+                let started = *frame_started.get_or_insert_with(Instant::now);
+                limits.read_timeout.saturating_sub(started.elapsed())
             };
             let shutdown = self.ctx.shutdown.clone();
             tokio::select! {
                 read = tokio::time::timeout(wait, self.stream.read_buf(&mut self.read)) => match read {
                     Err(_elapsed) => {
                         let text = if self.read.is_empty() {
-                            format!("no frame for {}", crate::config::duration::display(wait))
+                            format!("no frame for {}", crate::config::duration::display(limits.idle_timeout))
                         } else {
-                            format!("frame not completed within {}", crate::config::duration::display(wait))
+                            format!(
+                                "frame not completed within {}",
+                                crate::config::duration::display(limits.read_timeout)
+                            )
                         };
                         self.fault(FaultCode::Idle, true, &text).await?;
                         return self.finish().await;
@@ -335,10 +343,7 @@ where
             probability: probability.unwrap_or(f64::NAN),
             recipients: decisions
                 .into_iter()
-                .map(|(address, action)| RecipientAction {
-                    address,
-                    action: wire_action(action),
-                })
+                .map(|(address, action)| RecipientAction { address, action })
                 .collect(),
             edits: edits.iter().map(wire_edit).collect(),
             reasons,
@@ -371,15 +376,6 @@ fn log_verdict(
         model = engine.origin(),
         "verdict"
     );
-}
-
-fn wire_action(action: Action) -> crate::proto::Action {
-    match action {
-        Action::Accept => crate::proto::Action::Accept,
-        Action::Tag => crate::proto::Action::Tag,
-        Action::Quarantine => crate::proto::Action::Quarantine,
-        Action::Defer => crate::proto::Action::Defer,
-    }
 }
 
 fn wire_edit(edit: &HeaderEdit) -> Edit {

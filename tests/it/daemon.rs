@@ -75,6 +75,15 @@ impl Raw {
         self.stream.write_all(&out).expect("write");
     }
 
+    /// Several frames in one write, so they arrive together.
+    fn send_together(&mut self, frames: &[Frame]) {
+        let mut out = BytesMut::new();
+        for frame in frames {
+            encode_frame(frame, &mut out).expect("encodes");
+        }
+        self.stream.write_all(&out).expect("write");
+    }
+
     fn bytes(&mut self, bytes: &[u8]) {
         self.stream.write_all(bytes).expect("write");
     }
@@ -259,7 +268,7 @@ async fn python_client_replays_vectors_and_agrees_with_tamis_check_on_1000_messa
             for r in &ours.recipients {
                 assert_eq!(
                     theirs["actions"][&r.address],
-                    r.action.name(),
+                    r.action.as_str(),
                     "{}",
                     path.display()
                 );
@@ -429,10 +438,16 @@ mod hostile {
                 let mut raw = Raw::hello(addr);
                 let mut frame = BytesMut::new();
                 encode_frame(&Frame::Ping { token: 7 }, &mut frame).expect("encodes");
-                for byte in frame.iter().take(frame.len() - 1) {
-                    raw.bytes(&[*byte]);
+                // 7 bytes at 200 ms each: 1.4 s on one unfinished frame, against a 500 ms read
+                // timeout that counts from the frame's first byte, not from the last read. The
+                // fault must already be waiting; a per-read timeout would only fire at 1.9 s.
+                for byte in frame.iter().take(7) {
+                    let _ = raw.stream.write_all(&[*byte]);
                     std::thread::sleep(Duration::from_millis(200));
                 }
+                raw.stream
+                    .set_read_timeout(Some(Duration::from_millis(100)))
+                    .expect("timeout");
                 raw.fatal()
             },
             FaultCode::Idle,
@@ -625,11 +640,13 @@ async fn a_sender_after_shutdown_is_refused() {
         });
         ready_tx.send(()).expect("signal");
         go_rx.recv().expect("wait");
-        // ...and the next message, pipelined behind the seal, is refused.
-        raw.send(&Frame::Seal);
-        raw.send(&Frame::Sender {
-            address: "c@example.net".into(),
-        });
+        // ...and the next message, pipelined behind the seal in the same write, is refused.
+        raw.send_together(&[
+            Frame::Seal,
+            Frame::Sender {
+                address: "c@example.net".into(),
+            },
+        ]);
         assert!(matches!(raw.next(), Some(Frame::Verdict(_))));
         raw.fatal()
     });
