@@ -456,25 +456,30 @@ mod hostile {
     }
 
     #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-    async fn idle_connections_are_closed_and_the_limit_answers_busy() {
+    async fn thousands_of_idle_connections_are_closed_and_the_limit_answers_busy() {
         let mut config = short_timeouts();
-        config.limits.max_connections = 20;
-        config.limits.idle_timeout = Duration::from_secs(3);
+        config.limits.max_connections = 1800;
+        config.limits.idle_timeout = Duration::from_secs(4);
         check(
             config,
             |addr| {
-                let idle: Vec<Raw> = (0..20).map(|_| Raw::hello(addr)).collect();
-                let mut extra = Raw::connect(addr);
-                extra.send(&Frame::Hello {
-                    version: 1,
-                    max_frame: 1 << 20,
-                    client: "one too many".into(),
-                });
-                let code = extra.fatal();
+                let idle: Vec<Raw> = (0..1800).map(|_| Raw::hello(addr)).collect();
+                let busy: Vec<FaultCode> = (0..200)
+                    .map(|_| {
+                        let mut extra = Raw::connect(addr);
+                        extra.send(&Frame::Hello {
+                            version: 1,
+                            max_frame: 1 << 20,
+                            client: "one too many".into(),
+                        });
+                        extra.fatal()
+                    })
+                    .collect();
+                assert!(busy.iter().all(|c| *c == FaultCode::Busy));
                 for mut conn in idle {
                     assert_eq!(conn.fatal(), FaultCode::Idle);
                 }
-                code
+                busy[0]
             },
             FaultCode::Busy,
         )
@@ -576,6 +581,38 @@ mod hostile {
         )
         .await;
     }
+}
+
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn unix_socket_with_configured_mode() {
+    use std::os::unix::fs::PermissionsExt;
+    let dir = tempfile::tempdir().expect("temp dir");
+    let path = dir.path().join("tamis.sock");
+    let mut config = loopback();
+    config.listen.tcp = None;
+    config.listen.unix = Some(tamis::config::UnixSocket {
+        path: path.clone(),
+        mode: 0o600,
+    });
+    let (running, _) = daemon(config).await;
+    let mode = std::fs::metadata(&path)
+        .expect("socket")
+        .permissions()
+        .mode()
+        & 0o777;
+    assert_eq!(mode, 0o600);
+    let address = format!("unix:{}", path.display());
+    let verdict = tokio::task::spawn_blocking(move || {
+        let mut client = Client::connect(&address, Duration::from_secs(20)).expect("connect");
+        client
+            .scan("a@example.net", &["b@example.org".to_string()], &message(3))
+            .expect("verdict")
+    })
+    .await
+    .expect("task");
+    assert!(verdict.margin.is_finite());
+    assert!(running.stop().await);
+    assert!(!path.exists(), "the socket file is removed at shutdown");
 }
 
 #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
