@@ -459,7 +459,7 @@ mod hostile {
     async fn thousands_of_idle_connections_are_closed_and_the_limit_answers_busy() {
         let mut config = short_timeouts();
         config.limits.max_connections = 1800;
-        config.limits.idle_timeout = Duration::from_secs(4);
+        config.limits.idle_timeout = Duration::from_secs(10);
         check(
             config,
             |addr| {
@@ -631,6 +631,10 @@ async fn shutdown_finishes_open_messages_and_refuses_new_ones() {
             address: "b@example.org".into(),
         });
         raw.send(&Frame::Chunk { data: message(1) });
+        // PING/PONG: the server has read everything before it, so the message is open on
+        // its side before the shutdown starts.
+        raw.send(&Frame::Ping { token: 9 });
+        assert_eq!(raw.next(), Some(Frame::Pong { token: 9 }));
         ready_tx.send(()).expect("signal");
         go_rx.recv().expect("wait");
         raw.send(&Frame::Seal);
@@ -675,6 +679,10 @@ async fn a_sender_after_shutdown_is_refused() {
         raw.send(&Frame::Recipient {
             address: "b@example.org".into(),
         });
+        // PING/PONG: the server has read everything before it, so the message is open on
+        // its side before the shutdown starts.
+        raw.send(&Frame::Ping { token: 9 });
+        assert_eq!(raw.next(), Some(Frame::Pong { token: 9 }));
         ready_tx.send(()).expect("signal");
         go_rx.recv().expect("wait");
         // ...and the next message, pipelined behind the seal in the same write, is refused.
