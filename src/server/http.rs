@@ -2,7 +2,6 @@
 //! `/readyz`. Nothing else is served; requests are read with a size cap and a timeout, so a
 //! slow or hostile scraper costs one small task.
 
-use std::net::SocketAddr;
 use std::sync::Arc;
 use std::time::Duration;
 
@@ -29,22 +28,20 @@ pub async fn serve_status(
     status: Arc<dyn Status>,
     shutdown: CancellationToken,
 ) {
-    {
-        loop {
-            let accepted = tokio::select! {
-                _ = shutdown.cancelled() => return,
-                accepted = listener.accept() => accepted,
-            };
-            let Ok((stream, _peer)) = accepted else {
-                // Out of descriptors and the like: back off instead of spinning.
-                tokio::time::sleep(Duration::from_millis(100)).await;
-                continue;
-            };
-            let status = Arc::clone(&status);
-            tokio::spawn(async move {
-                let _ = tokio::time::timeout(REQUEST_TIMEOUT, answer(stream, status)).await;
-            });
-        }
+    loop {
+        let accepted = tokio::select! {
+            _ = shutdown.cancelled() => return,
+            accepted = listener.accept() => accepted,
+        };
+        let Ok((stream, _peer)) = accepted else {
+            // Out of descriptors and the like: back off instead of spinning.
+            tokio::time::sleep(Duration::from_millis(100)).await;
+            continue;
+        };
+        let status = Arc::clone(&status);
+        tokio::spawn(async move {
+            let _ = tokio::time::timeout(REQUEST_TIMEOUT, answer(stream, status)).await;
+        });
     }
 }
 
@@ -90,9 +87,4 @@ async fn answer(mut stream: tokio::net::TcpStream, status: Arc<dyn Status>) -> s
     );
     stream.write_all(response.as_bytes()).await?;
     stream.shutdown().await
-}
-
-/// Binds the status listener (loopback by default in the configuration).
-pub async fn bind_status(addr: SocketAddr) -> std::io::Result<TcpListener> {
-    TcpListener::bind(addr).await
 }
