@@ -109,7 +109,8 @@ pub fn sender_domain(fields: &[MailHeader<'_>]) -> Option<String> {
 /// `method=result` tokens such as `spf=pass` or `dkim=fail`. Only the topmost field is
 /// read: it is the one the operator's own border host added (common practice).
 pub fn auth_results(fields: &[MailHeader<'_>]) -> Vec<String> {
-    let Some(value) = fields.get_first_value("Authentication-Results") else {
+    // A structured field (RFC 8601 §2.2) without encoded words: no RFC 2047 decoding needed.
+    let Some(value) = first_structured(fields, "Authentication-Results") else {
         return Vec::new();
     };
     let mut tokens = Vec::new();
