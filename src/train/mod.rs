@@ -12,5 +12,6 @@ pub mod select;
 pub mod solver;
 pub mod stats;
 pub mod svmlight;
+pub mod synthetic;
 pub mod tune;
 pub mod vectorize;

@@ -8,31 +8,15 @@ use tamis::train::platt::fit_platt;
 use tamis::train::roc::{roc_auc, roc_curve};
 use tamis::train::stats::{try_clopper_pearson, try_clopper_pearson_upper};
 
+use tamis::rng::SplitMix64 as Rng;
+
 use crate::python;
 
-/// Seeded test data: every choice comes from the crate's SplitMix64.
-struct Rng(tamis::rng::SplitMix64);
-
-impl Rng {
-    fn next_u64(&mut self) -> u64 {
-        self.0.next_u64()
-    }
-
-    /// Uniform in [0, 1).
-    fn uniform(&mut self) -> f64 {
-        (self.next_u64() >> 11) as f64 / (1u64 << 53) as f64
-    }
-
-    fn below(&mut self, n: usize) -> usize {
-        (self.uniform() * n as f64) as usize
-    }
-
-    /// Standard normal by the Box–Muller transform.
-    fn normal(&mut self) -> f64 {
-        let u = 1.0 - self.uniform();
-        let v = self.uniform();
-        (-2.0 * u.ln()).sqrt() * (std::f64::consts::TAU * v).cos()
-    }
+/// Standard normal by the Box–Muller transform.
+fn normal(rng: &mut Rng) -> f64 {
+    let u = 1.0 - rng.unit();
+    let v = rng.unit();
+    (-2.0 * u.ln()).sqrt() * (std::f64::consts::TAU * v).cos()
 }
 
 /// Scores and labels (`true` = spam) with both classes present: class-shifted normal
@@ -44,7 +28,7 @@ fn scored_set(
     separation: f64,
     decimals: Option<i32>,
 ) -> (Vec<f64>, Vec<bool>) {
-    let mut labels: Vec<bool> = (0..len).map(|_| rng.uniform() < spam_share).collect();
+    let mut labels: Vec<bool> = (0..len).map(|_| rng.unit() < spam_share).collect();
     // Both classes must appear for the curve to exist.
     if let Some(first) = labels.first_mut() {
         *first = true;
@@ -55,7 +39,7 @@ fn scored_set(
     let scores = labels
         .iter()
         .map(|&spam| {
-            let raw = rng.normal() + if spam { separation } else { 0.0 };
+            let raw = normal(rng) + if spam { separation } else { 0.0 };
             match decimals {
                 Some(d) => {
                     let scale = 10f64.powi(d);
@@ -111,13 +95,13 @@ print(json.dumps(out))
 
 #[test]
 fn roc_auc_and_curve_match_scikit_learn_including_ties() {
-    let mut rng = Rng(tamis::rng::SplitMix64::new(0x7A31_5EED));
+    let mut rng = Rng::new(0x7A31_5EED);
     let mut sets = Vec::new();
     for i in 0..320 {
         let len = 2 + rng.below(400);
         // From balanced down to one spam in fifty: held-out mail is heavily imbalanced.
         let spam_share = [0.5, 0.3, 0.1, 0.02][i % 4];
-        let separation = rng.uniform() * 3.0;
+        let separation = rng.unit() * 3.0;
         // Rounding to one or two decimals (or to integers) makes ties common.
         let decimals = [None, Some(2), Some(1), Some(0)][(i / 4) % 4];
         sets.push(scored_set(&mut rng, len, spam_share, separation, decimals));
@@ -185,7 +169,7 @@ print(json.dumps(out))
 /// L-BFGS, so the two optima agree up to the solvers' tolerances.
 #[test]
 fn platt_parameters_match_scikit_learn_sigmoid_calibration() {
-    let mut rng = Rng(tamis::rng::SplitMix64::new(0x0B1A_7701));
+    let mut rng = Rng::new(0x0B1A_7701);
     let mut sets = Vec::new();
     // (size, spam share, separation, margin scale): overlapping, well separated, imbalanced,
     // and margins beyond 30 (where scikit-learn rescales before fitting).

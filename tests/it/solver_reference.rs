@@ -50,50 +50,10 @@ for cfg in configs:
 json.dump(out, sys.stdout)
 "#;
 
-/// Seeded test data: every choice comes from the crate's SplitMix64.
-struct Rng(tamis::rng::SplitMix64);
-
-impl Rng {
-    fn next(&mut self) -> u64 {
-        self.0.next_u64()
-    }
-    fn unit(&mut self) -> f64 {
-        (self.next() >> 11) as f64 / (1u64 << 53) as f64
-    }
-    fn below(&mut self, n: usize) -> usize {
-        ((u128::from(self.next()) * n as u128) >> 64) as usize
-    }
-}
-
-/// Text-like rows: a skewed shared vocabulary plus class-leaning bands that overlap, about a
-/// quarter spam, some labels flipped so the classes are not separable; values are sublinear
-/// counts scaled to unit length, as the featurizer produces.
+/// Text-like rows from the crate's seeded generator (`tamis::train::synthetic`).
 fn synthetic(rows: usize, seed: u64) -> Dataset {
-    let mut rng = Rng(tamis::rng::SplitMix64::new(seed));
-    let mut data = Vec::with_capacity(rows);
-    let mut labels = Vec::with_capacity(rows);
-    for _ in 0..rows {
-        let spam = rng.unit() < 0.25;
-        let nnz = 15 + rng.below(31);
-        let mut counts = std::collections::BTreeMap::<u32, f32>::new();
-        for _ in 0..nnz {
-            let u = rng.unit();
-            let index = if rng.unit() < 0.35 {
-                let (lo, hi) = if spam { (0.20, 0.60) } else { (0.40, 0.90) };
-                ((lo + (hi - lo) * u) * DIMS as f64) as u32
-            } else {
-                (u * u * DIMS as f64) as u32
-            };
-            *counts.entry(index.min(DIMS as u32 - 1)).or_default() += 1.0;
-        }
-        let mut x =
-            SparseVector::from_pairs(counts.into_iter().map(|(i, c)| (i, 1.0 + c.ln())).collect());
-        x.normalize_l2();
-        data.push(x);
-        let flipped = rng.unit() < 0.03;
-        labels.push(if spam != flipped { 1 } else { -1 });
-    }
-    Dataset::new(data, labels, DIMS).expect("generated rows are valid")
+    tamis::train::synthetic::overlapping_classes(rows, DIMS, 15, 31, seed)
+        .expect("generated rows are valid")
 }
 
 fn agreement(w_a: &[f64], b_a: f64, w_b: &[f64], b_b: f64, test: &Dataset) -> f64 {
