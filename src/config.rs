@@ -810,6 +810,16 @@ mod subject_prefix {
     }
 }
 
+/// Splits `"30s"` or `"64 KiB"` into its leading digits and the unit after them (blanks
+/// before the unit removed), for the duration and size notations.
+fn split_number_unit(text: &str) -> (&str, &str) {
+    let split = text
+        .find(|c: char| !c.is_ascii_digit())
+        .unwrap_or(text.len());
+    let (number, unit) = text.split_at(split);
+    (number, unit.trim_start())
+}
+
 /// Durations: whole seconds, or a string with one unit (`ms`, `s`, `m`, `h`).
 pub mod duration {
     use super::*;
@@ -819,11 +829,7 @@ pub mod duration {
     /// Parses `"250ms"`, `"30s"`, `"5m"`, `"1h"` (spaces allowed before the unit).
     pub fn parse(text: &str) -> Result<Duration, String> {
         let text = text.trim();
-        let split = text
-            .find(|c: char| !c.is_ascii_digit())
-            .unwrap_or(text.len());
-        let (number, unit) = text.split_at(split);
-        let unit = unit.trim_start();
+        let (number, unit) = super::split_number_unit(text);
         let err = || {
             format!(
                 "\"{text}\" is not a duration; write a whole number with one unit: \"250ms\", \"30s\", \"5m\" or \"1h\" (or an integer number of seconds)"
@@ -897,11 +903,7 @@ pub mod size {
     /// Parses `"512 B"`, `"64 KiB"`, `"10 MiB"`, `"1 GiB"` (the space is optional).
     pub fn parse(text: &str) -> Result<u64, String> {
         let text = text.trim();
-        let split = text
-            .find(|c: char| !c.is_ascii_digit())
-            .unwrap_or(text.len());
-        let (number, unit) = text.split_at(split);
-        let unit = unit.trim_start();
+        let (number, unit) = super::split_number_unit(text);
         let n: u64 = number.parse().map_err(|_| {
             format!("\"{text}\" is not a size; write a whole number with a unit such as \"64 KiB\" or \"10 MiB\" (or an integer number of bytes)")
         })?;
