@@ -75,6 +75,16 @@ impl Raw {
         self.stream.write_all(&out).expect("write");
     }
 
+    /// Starts a message: envelope sender and one recipient.
+    fn open_message(&mut self) {
+        self.send(&Frame::Sender {
+            address: "a@example.net".into(),
+        });
+        self.send(&Frame::Recipient {
+            address: "b@example.org".into(),
+        });
+    }
+
     /// Several frames in one write, so they arrive together.
     fn send_together(&mut self, frames: &[Frame]) {
         let mut out = BytesMut::new();
@@ -382,12 +392,7 @@ mod hostile {
             loopback(),
             |addr| {
                 let mut raw = Raw::hello(addr);
-                raw.send(&Frame::Sender {
-                    address: "a@example.net".into(),
-                });
-                raw.send(&Frame::Recipient {
-                    address: "b@example.org".into(),
-                });
+                raw.open_message();
                 raw.send(&Frame::Seal);
                 assert!(matches!(raw.next(), Some(Frame::Verdict(_))));
                 raw.send(&Frame::Seal);
@@ -405,12 +410,7 @@ mod hostile {
             |addr| {
                 {
                     let mut raw = Raw::hello(addr);
-                    raw.send(&Frame::Sender {
-                        address: "a@example.net".into(),
-                    });
-                    raw.send(&Frame::Recipient {
-                        address: "b@example.org".into(),
-                    });
+                    raw.open_message();
                     raw.bytes(&[0, 0, 0, 200, 0x06, 0, 0]);
                 }
                 // Then one that stalls inside a frame until the read timeout.
@@ -494,12 +494,7 @@ mod hostile {
             config,
             |addr| {
                 let mut raw = Raw::hello(addr);
-                raw.send(&Frame::Sender {
-                    address: "a@example.net".into(),
-                });
-                raw.send(&Frame::Recipient {
-                    address: "b@example.org".into(),
-                });
+                raw.open_message();
                 raw.send(&Frame::Field {
                     name: "Subject".into(),
                     value: b"big".to_vec(),
@@ -538,12 +533,7 @@ mod hostile {
             config,
             |addr| {
                 let mut raw = Raw::hello(addr);
-                raw.send(&Frame::Sender {
-                    address: "a@example.net".into(),
-                });
-                raw.send(&Frame::Recipient {
-                    address: "b@example.org".into(),
-                });
+                raw.open_message();
                 raw.send(&Frame::Field {
                     name: "X-Long".into(),
                     value: vec![b'y'; 1 << 20],
@@ -624,12 +614,7 @@ async fn shutdown_finishes_open_messages_and_refuses_new_ones() {
     let (go_tx, go_rx) = std::sync::mpsc::channel::<()>();
     let conversation = tokio::task::spawn_blocking(move || {
         let mut raw = Raw::hello(addr);
-        raw.send(&Frame::Sender {
-            address: "a@example.net".into(),
-        });
-        raw.send(&Frame::Recipient {
-            address: "b@example.org".into(),
-        });
+        raw.open_message();
         raw.send(&Frame::Chunk { data: message(1) });
         // PING/PONG: the server has read everything before it, so the message is open on
         // its side before the shutdown starts.
@@ -673,12 +658,7 @@ async fn a_sender_after_shutdown_is_refused() {
     let conversation = tokio::task::spawn_blocking(move || {
         let mut raw = Raw::hello(addr);
         // A message is open, so the connection stays up through the shutdown...
-        raw.send(&Frame::Sender {
-            address: "a@example.net".into(),
-        });
-        raw.send(&Frame::Recipient {
-            address: "b@example.org".into(),
-        });
+        raw.open_message();
         // PING/PONG: the server has read everything before it, so the message is open on
         // its side before the shutdown starts.
         raw.send(&Frame::Ping { token: 9 });
@@ -928,12 +908,7 @@ async fn a_message_that_cannot_be_scored_follows_the_failure_mode() {
         let addr = running.tcp.expect("tcp");
         let verdict = tokio::task::spawn_blocking(move || {
             let mut raw = Raw::hello(addr);
-            raw.send(&Frame::Sender {
-                address: "a@example.net".into(),
-            });
-            raw.send(&Frame::Recipient {
-                address: "b@example.org".into(),
-            });
+            raw.open_message();
             // No header fields and a binary body: not a mail message, so not scannable.
             raw.send(&Frame::Chunk {
                 data: b"\x89PNG\r\n\x1a\n\0\0".to_vec(),
