@@ -51,11 +51,15 @@ impl Context {
 /// The message being assembled.
 #[derive(Default)]
 struct Message {
+    /// The engine in force when the message started; it scores the message even if a
+    /// reload swaps the shared one meanwhile.
+    engine: Option<Arc<Engine>>,
+    /// Most bytes kept: the engine's raw scan limit, never more than the message limit.
+    cap: usize,
     recipients: Vec<String>,
     raw: Vec<u8>,
     body_started: bool,
     enough_sent: bool,
-    received: u64,
 }
 
 enum Flow {
@@ -226,7 +230,14 @@ where
                     .await?;
                     return Ok(Flow::Close);
                 }
-                self.message = Message::default();
+                let engine = self.ctx.engine.current();
+                let cap = (engine.model().spec().limits.max_raw_bytes as u64)
+                    .min(self.ctx.limits.max_message_bytes) as usize;
+                self.message = Message {
+                    engine: Some(engine),
+                    cap,
+                    ..Message::default()
+                };
             }
             Frame::Recipient { address } if !matches!(accepted.keep, Keep::Nothing) => {
                 self.message.recipients.push(address);
@@ -252,7 +263,6 @@ where
                 }
                 let n = keep(&data).min(self.scan_room());
                 self.message.raw.extend_from_slice(&data[..n]);
-                self.message.received += data.len() as u64;
                 if !self.message.enough_sent && self.scan_room() == 0 {
                     self.message.enough_sent = true;
                     self.send(&Frame::Enough).await?;
@@ -278,17 +288,18 @@ where
         Ok(Flow::Continue)
     }
 
-    /// Bytes the message may still grow by: the engine's raw scan limit, never more than the
-    /// configured message limit.
+    /// Bytes the message may still grow by.
     fn scan_room(&self) -> usize {
-        let engine = self.ctx.engine.current();
-        let cap = (engine.model().spec().limits.max_raw_bytes as u64)
-            .min(self.ctx.limits.max_message_bytes) as usize;
-        cap.saturating_sub(self.message.raw.len())
+        self.message.cap.saturating_sub(self.message.raw.len())
     }
 
     async fn decide(&mut self) -> Verdict {
-        let engine = self.ctx.engine.current();
+        // The state machine allows SEAL only after SENDER, which set the engine.
+        let engine = self
+            .message
+            .engine
+            .take()
+            .unwrap_or_else(|| self.ctx.engine.current());
         let raw = std::mem::take(&mut self.message.raw);
         let recipients = std::mem::take(&mut self.message.recipients);
         let bytes = raw.len() as u64;
