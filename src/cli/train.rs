@@ -15,7 +15,10 @@ use crate::train::dataset::Dataset;
 use crate::train::platt::fit_platt;
 use crate::train::plots::{FprScale, write_roc_svg, write_score_histograms_svg};
 use crate::train::roc::RocCurve;
-use crate::train::select::{Candidate, better, evaluate_candidate, stratified_folds};
+use crate::train::select::{
+    Candidate, balanced_class_weights, better, default_thresholds, evaluate_candidate,
+    stratified_folds,
+};
 use crate::train::solver::{Loss, SvmParamsBuilder, fit_svm};
 use crate::train::svmlight::parse_svmlight;
 use crate::train::vectorize::progress_bar;
@@ -299,13 +302,7 @@ fn loss_name(loss: LossArg) -> &'static str {
 fn solver_params(args: &TrainArgs, c: f64, data: &Dataset) -> SvmParamsBuilder {
     let (weight_pos, weight_neg) = match args.class_weight {
         ClassWeight::None => (1.0, 1.0),
-        ClassWeight::Balanced => {
-            let n = data.len() as f64;
-            (
-                n / (2.0 * data.n_pos().max(1) as f64),
-                n / (2.0 * data.n_neg().max(1) as f64),
-            )
-        }
+        ClassWeight::Balanced => balanced_class_weights(data),
     };
     SvmParamsBuilder {
         c,
@@ -352,21 +349,6 @@ fn dataset_from_svmlight(path: &Path, spec: &FeatureSpec) -> anyhow::Result<Data
         parsed.labels().to_vec(),
         spec.dimensions(),
     )?)
-}
-
-/// Quarantine at the target false-positive rate, tag at ten times it (capped at 100%), from
-/// the out-of-fold ROC curve. A threshold that flags nothing becomes a finite margin just
-/// above every score seen.
-fn default_thresholds(
-    curve: &RocCurve,
-    margins: &[f64],
-    target: f64,
-) -> anyhow::Result<Thresholds> {
-    let ceiling = margins.iter().copied().fold(f64::NEG_INFINITY, f64::max) + 1e-9;
-    let finite = |t: f64| if t.is_finite() { t } else { ceiling };
-    let quarantine = finite(curve.tpr_at_fpr(target)?.threshold);
-    let tag = finite(curve.tpr_at_fpr((target * 10.0).min(1.0))?.threshold).min(quarantine);
-    Ok(Thresholds { tag, quarantine })
 }
 
 fn write_report(

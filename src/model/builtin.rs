@@ -6,14 +6,16 @@
 //! Training is deterministic (fixed seed, fixed parameters), so every start gives the same
 //! model.
 
-use super::{Calibration, LinearModel, ModelError, Thresholds, TrainingSummary};
+use super::{Calibration, LinearModel, ModelError, TrainingSummary};
 use crate::Label;
 use crate::analyze::Analyzer;
 use crate::features::FeatureSpec;
 use crate::train::dataset::{Dataset, DatasetError};
 use crate::train::platt::fit_platt;
 use crate::train::roc::RocCurve;
-use crate::train::select::{out_of_fold_margins, stratified_folds};
+use crate::train::select::{
+    balanced_class_weights, default_thresholds, out_of_fold_margins, stratified_folds,
+};
 use crate::train::solver::{ParamError, SvmParamsBuilder, fit_svm};
 
 /// Messages of the demo corpus the built-in model learns from.
@@ -61,11 +63,11 @@ pub fn demonstration_model() -> Result<LinearModel, BuiltinError> {
         }
     }
     let data = Dataset::new(rows, labels, spec.dimensions())?;
-    let n = data.len() as f64;
+    let (weight_pos, weight_neg) = balanced_class_weights(&data);
     let params = SvmParamsBuilder {
         c: 1.0,
-        weight_pos: n / (2.0 * data.n_pos().max(1) as f64),
-        weight_neg: n / (2.0 * data.n_neg().max(1) as f64),
+        weight_pos,
+        weight_neg,
         seed: SEED,
         ..SvmParamsBuilder::default()
     };
@@ -74,10 +76,7 @@ pub fn demonstration_model() -> Result<LinearModel, BuiltinError> {
     let positive: Vec<bool> = data.labels().iter().map(|&l| l > 0).collect();
     let platt = fit_platt(&margins, &positive)?;
     let curve = RocCurve::from_scores(&margins, &positive)?;
-    let ceiling = margins.iter().copied().fold(f64::NEG_INFINITY, f64::max) + 1e-9;
-    let finite = |t: f64| if t.is_finite() { t } else { ceiling };
-    let quarantine = finite(curve.tpr_at_fpr(0.001)?.threshold);
-    let tag = finite(curve.tpr_at_fpr(0.01)?.threshold).min(quarantine);
+    let thresholds = default_thresholds(&curve, &margins, 0.001)?;
     let fitted = fit_svm(&data, &params.validate()?);
     let summary = TrainingSummary {
         n_spam: data.n_pos() as u64,
@@ -95,7 +94,7 @@ pub fn demonstration_model() -> Result<LinearModel, BuiltinError> {
             a: platt.a(),
             b: platt.b(),
         }),
-        Some(Thresholds { tag, quarantine }),
+        Some(thresholds),
         summary,
     )?)
 }

@@ -108,6 +108,31 @@ pub fn better(a: &Candidate, b: &Candidate) -> bool {
     (a.max_ngram, a.c) < (b.max_ngram, b.c)
 }
 
+/// Per-class multipliers of C that give each class the same total weight, whatever their
+/// sizes (`n / (2 n_class)`): junk, then legitimate.
+pub fn balanced_class_weights(data: &Dataset) -> (f64, f64) {
+    let n = data.len() as f64;
+    (
+        n / (2.0 * data.n_pos().max(1) as f64),
+        n / (2.0 * data.n_neg().max(1) as f64),
+    )
+}
+
+/// Default margins from out-of-fold scores: quarantine at the target false-positive rate,
+/// tag at ten times it (capped at 100%). A threshold that would flag nothing becomes a finite
+/// margin just above every score seen.
+pub fn default_thresholds(
+    curve: &RocCurve,
+    margins: &[f64],
+    target: f64,
+) -> Result<crate::model::Thresholds, EvalError> {
+    let ceiling = margins.iter().copied().fold(f64::NEG_INFINITY, f64::max) + 1e-9;
+    let finite = |t: f64| if t.is_finite() { t } else { ceiling };
+    let quarantine = finite(curve.tpr_at_fpr(target)?.threshold);
+    let tag = finite(curve.tpr_at_fpr((target * 10.0).min(1.0))?.threshold).min(quarantine);
+    Ok(crate::model::Thresholds { tag, quarantine })
+}
+
 /// Why model selection could not run.
 #[derive(Debug, thiserror::Error)]
 pub enum SelectError {
