@@ -40,11 +40,18 @@ struct Row {
 
 /// Runs `tamis demo`.
 pub fn run(args: &DemoArgs) -> anyhow::Result<u8> {
-    let temp = tempfile_dir(args)?;
-    let dir = temp.as_ref().map_or_else(
-        || args.dir.clone().unwrap_or_default(),
-        |t| t.path().to_path_buf(),
-    );
+    // Without --dir the demo works in a temporary folder, removed when `_temp` is dropped.
+    let (_temp, dir) = match &args.dir {
+        Some(dir) => {
+            std::fs::create_dir_all(dir)?;
+            (None, dir.clone())
+        }
+        None => {
+            let temp = tempfile::tempdir()?;
+            let path = temp.path().to_path_buf();
+            (Some(temp), path)
+        }
+    };
     println!(
         "tamis demo — invented scenario (made-up organisations on reserved domains); nothing here measures accuracy on real mail.\n"
     );
@@ -164,14 +171,4 @@ pub fn run(args: &DemoArgs) -> anyhow::Result<u8> {
         eprintln!("tamis: some connections were cut at shutdown");
     }
     Ok(super::EXIT_OK)
-}
-
-fn tempfile_dir(args: &DemoArgs) -> anyhow::Result<Option<tempfile::TempDir>> {
-    match &args.dir {
-        Some(dir) => {
-            std::fs::create_dir_all(dir)?;
-            Ok(None)
-        }
-        None => Ok(Some(tempfile::tempdir()?)),
-    }
 }
