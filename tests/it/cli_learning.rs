@@ -328,6 +328,51 @@ mod bad_input {
     }
 
     #[test]
+    fn a_malformed_svmlight_file_names_line_and_column() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let svm = dir.path().join("bad.svm");
+        std::fs::write(&svm, "+1 3:0.5 7:1\n-1 4:0.25 2:x\n").expect("write");
+        let out = run(&[
+            "train",
+            "--svmlight",
+            s(&svm),
+            "--ngram",
+            "1",
+            "--out",
+            s(&dir.path().join("m")),
+        ]);
+        assert_eq!(out.status.code(), Some(2));
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert!(err.contains("bad.svm") && err.contains(":2:"), "{err}");
+    }
+
+    #[test]
+    fn check_without_a_daemon_says_where_it_tried() {
+        let f = fixture();
+        let port = std::net::TcpListener::bind("127.0.0.1:0")
+            .expect("bind")
+            .local_addr()
+            .expect("addr")
+            .port();
+        let addr = format!("127.0.0.1:{port}");
+        let message = f.corpus.join("labels.tsv");
+        let out = run(&[
+            "check",
+            "--connect",
+            &addr,
+            "--rcpt",
+            "a@example.org",
+            s(&message),
+        ]);
+        assert_eq!(out.status.code(), Some(2));
+        let err = String::from_utf8_lossy(&out.stderr);
+        assert!(
+            err.contains(&addr) && err.contains("cannot talk to the daemon"),
+            "{err}"
+        );
+    }
+
+    #[test]
     fn damaged_and_foreign_model_files_are_refused() {
         let f = fixture();
         let dir = tempfile::tempdir().expect("temp dir");
