@@ -15,6 +15,9 @@
 //!
 //! 5. [`proto`] — the relay protocol's frames, codec and state machine (`proto/PROTOCOL.md`).
 //!
+//! [`fsio`] is the one way files are replaced (temporary file, fsync, rename) and the
+//! bounded, non-blocking way model and configuration files are read.
+//!
 //! [`demo`] generates the invented demonstration corpus used by examples and benchmarks.
 #![forbid(unsafe_code)]
 
@@ -23,6 +26,7 @@ pub mod cli;
 pub mod config;
 pub mod demo;
 pub mod features;
+pub mod fsio;
 pub mod label;
 pub mod mail;
 pub mod metrics;
