@@ -79,14 +79,16 @@ pub enum Problem {
 }
 
 impl FsioError {
-    fn new(path: &Path, problem: Problem) -> FsioError {
+    /// An error about `path`.
+    pub fn new(path: &Path, problem: Problem) -> FsioError {
         FsioError {
             path: path.to_path_buf(),
             problem,
         }
     }
 
-    fn io(path: &Path, doing: &'static str, error: io::Error) -> FsioError {
+    /// An operating-system error met while doing `doing` ("read it") to `path`.
+    pub fn io(path: &Path, doing: &'static str, error: io::Error) -> FsioError {
         FsioError::new(path, Problem::Io { doing, error })
     }
 

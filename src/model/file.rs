@@ -14,15 +14,24 @@
 //! ```
 //!
 //! Weights are raw little-endian floats, so loading a 2^22-weight model is a copy, not a
-//! parse. Every way a file can be wrong — foreign, truncated, corrupted, from a newer
+//! parse. A model's size follows from its header, so [`load_model`] reads the header first
+//! and refuses a file larger than it declares (or declaring more weights than any supported
+//! feature spec has) before reading the weights; it refuses anything but a regular file,
+//! never blocks on a FIFO, and gives up on a stalled file system after
+//! [`crate::fsio::READ_TIMEOUT`]. Files are written through [`crate::fsio`], so a daemon
+//! reloading the path reads the old model or the new one, never half of one. Every way a
+//! file can be wrong — foreign, truncated, corrupted, from a newer
 //! format, or made with a feature spec this binary cannot reproduce — is its own error.
 
+use std::io::Read;
 use std::path::{Path, PathBuf};
 
 use serde::{Deserialize, Serialize};
 
 use super::{Calibration, LinearModel, ModelError, Thresholds, TrainingSummary};
 use crate::features::FeatureSpec;
+use crate::features::spec::HASH_BITS_RANGE;
+use crate::fsio::{self, FsioError};
 
 /// First bytes of every model file.
 pub const MAGIC: &[u8; 8] = b"TAMISMDL";
@@ -30,18 +39,15 @@ pub const MAGIC: &[u8; 8] = b"TAMISMDL";
 pub const FORMAT_VERSION: u16 = 1;
 /// Largest accepted header.
 pub const MAX_HEADER_BYTES: usize = 1 << 20;
+/// Most weights a model can have: `2^hash_bits` for the largest supported `hash_bits`.
+pub const MAX_WEIGHTS: u64 = 1 << *HASH_BITS_RANGE.end();
 
 /// Why a model file was refused.
 #[derive(Debug, thiserror::Error)]
 pub enum ModelFileError {
-    /// The file cannot be read or written.
-    #[error("{path}: {source}")]
-    Io {
-        /// The file.
-        path: PathBuf,
-        /// The I/O error.
-        source: std::io::Error,
-    },
+    /// The file cannot be read or written, or is not a regular file, or reading it stalled.
+    #[error(transparent)]
+    File(#[from] FsioError),
     /// The file does not start with the model magic.
     #[error("{path}: not a tamis model file (it does not start with the TAMISMDL signature)")]
     Foreign {
@@ -136,27 +142,74 @@ pub fn encode_model(model: &LinearModel) -> Vec<u8> {
     out
 }
 
-/// Writes `model` to `path` atomically: a temporary file beside it, then a rename, so a
-/// daemon reloading the path never reads half a model.
+/// Writes `model` to `path` through [`crate::fsio::write_bytes`]: a new temporary file
+/// beside it, fsynced, then renamed over it. A `path` that is a link, folder, FIFO or device
+/// is refused.
 pub fn save_model(model: &LinearModel, path: &Path) -> Result<(), ModelFileError> {
-    let io = |source| ModelFileError::Io {
-        path: path.to_path_buf(),
-        source,
-    };
-    let mut tmp = path.as_os_str().to_owned();
-    tmp.push(".tmp");
-    let tmp = PathBuf::from(tmp);
-    std::fs::write(&tmp, encode_model(model)).map_err(io)?;
-    std::fs::rename(&tmp, path).map_err(io)
+    Ok(fsio::write_bytes(path, &encode_model(model))?)
 }
 
-/// Reads and checks the model at `path`.
+/// Reads and checks the model at `path`; see the module comment for the bounds.
 pub fn load_model(path: &Path) -> Result<LinearModel, ModelFileError> {
-    let bytes = std::fs::read(path).map_err(|source| ModelFileError::Io {
-        path: path.to_path_buf(),
-        source,
-    })?;
+    let owned = path.to_path_buf();
+    let bytes = fsio::with_deadline(path, fsio::READ_TIMEOUT, move || read_model_bytes(&owned))?;
     decode_model(&bytes, path)
+}
+
+/// Reads the bytes of a model file, never more than its header declares. A file too short
+/// or foreign to declare anything is returned as read, for [`decode_model`] to name.
+fn read_model_bytes(path: &Path) -> Result<Vec<u8>, ModelFileError> {
+    let (mut file, size) = fsio::open_regular(path)?;
+    let mut bytes = Vec::new();
+    let mut read_up_to = |bytes: &mut Vec<u8>, total: u64| -> Result<(), ModelFileError> {
+        let more = total.saturating_sub(bytes.len() as u64);
+        (&mut file)
+            .take(more)
+            .read_to_end(bytes)
+            .map_err(|e| FsioError::io(path, "read it", e))?;
+        Ok(())
+    };
+    read_up_to(&mut bytes, 16)?;
+    let Some(fixed) = bytes.get(..16) else {
+        return Ok(bytes);
+    };
+    let version = u16::from_le_bytes([fixed[8], fixed[9]]);
+    let header_len = u32::from_le_bytes([fixed[12], fixed[13], fixed[14], fixed[15]]) as u64;
+    if !fixed.starts_with(MAGIC)
+        || version != FORMAT_VERSION
+        || header_len > MAX_HEADER_BYTES as u64
+    {
+        return Ok(bytes);
+    }
+    let count_end = 16 + header_len + 4;
+    read_up_to(&mut bytes, count_end)?;
+    let Some(count) = bytes.get(count_end as usize - 4..count_end as usize) else {
+        return Ok(bytes);
+    };
+    let count = u64::from(u32::from_le_bytes([count[0], count[1], count[2], count[3]]));
+    if count > MAX_WEIGHTS {
+        return Err(ModelFileError::Header {
+            path: path.to_path_buf(),
+            reason: format!(
+                "it declares {count} weights, more than the {MAX_WEIGHTS} (2^{}) of the largest supported feature space",
+                HASH_BITS_RANGE.end()
+            ),
+        });
+    }
+    // Weights, then the f64 bias and the u32 checksum.
+    let declared = count_end + 4 * count + 12;
+    if size > declared {
+        return Err(ModelFileError::Header {
+            path: path.to_path_buf(),
+            reason: format!(
+                "the file has {size} bytes, larger than its header declares ({declared} bytes); it was not read further"
+            ),
+        });
+    }
+    bytes.reserve(size.saturating_sub(bytes.len() as u64) as usize);
+    // One byte more than declared, so a file that grew since the size check is noticed.
+    read_up_to(&mut bytes, declared + 1)?;
+    Ok(bytes)
 }
 
 /// Decodes a model from `bytes`; `path` names the source in errors.
@@ -296,6 +349,77 @@ mod tests {
     fn round_trip_is_exact() {
         let m = model();
         assert_eq!(decode(&encode_model(&m)).expect("decodes"), m);
+    }
+
+    #[test]
+    fn saved_models_load_back_and_every_file_truncation_is_named() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let path = dir.path().join("m.tamis");
+        let m = model();
+        save_model(&m, &path).expect("saved");
+        assert_eq!(load_model(&path).expect("loads"), m);
+        let bytes = encode_model(&m);
+        for cut in [0, 5, 15, 16, 40, bytes.len() - 13, bytes.len() - 1] {
+            std::fs::write(&path, &bytes[..cut]).expect("write");
+            match load_model(&path) {
+                Err(ModelFileError::Truncated { len, .. }) => assert_eq!(len, cut),
+                other => panic!("cut at {cut}: {other:?}"),
+            }
+        }
+    }
+
+    #[test]
+    fn a_file_longer_than_its_header_declares_is_refused_unread() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let path = dir.path().join("m.tamis");
+        save_model(&model(), &path).expect("saved");
+        // A terabyte on paper, a few blocks on disk: reading it would never finish.
+        std::fs::OpenOptions::new()
+            .write(true)
+            .open(&path)
+            .and_then(|f| f.set_len(1 << 40))
+            .expect("sparse extend");
+        match load_model(&path) {
+            Err(ModelFileError::Header { reason, .. }) => {
+                assert!(
+                    reason.contains("larger than its header declares"),
+                    "{reason}"
+                )
+            }
+            other => panic!("{other:?}"),
+        }
+    }
+
+    #[test]
+    fn a_header_declaring_more_weights_than_any_spec_is_refused() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let path = dir.path().join("m.tamis");
+        let mut bytes = encode_model(&model());
+        let header_len = u32::from_le_bytes([bytes[12], bytes[13], bytes[14], bytes[15]]) as usize;
+        bytes[16 + header_len..20 + header_len].copy_from_slice(&u32::MAX.to_le_bytes());
+        std::fs::write(&path, &bytes).expect("write");
+        match load_model(&path) {
+            Err(ModelFileError::Header { reason, .. }) => {
+                assert!(reason.contains("4294967295 weights"), "{reason}")
+            }
+            other => panic!("{other:?}"),
+        }
+    }
+
+    #[test]
+    fn a_fifo_or_device_is_refused_without_blocking() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let fifo = dir.path().join("m.fifo");
+        let made = std::process::Command::new("mkfifo").arg(&fifo).status();
+        assert!(made.is_ok_and(|s| s.success()));
+        for path in [fifo.as_path(), Path::new("/dev/zero")] {
+            match load_model(path) {
+                Err(e @ ModelFileError::File(_)) => {
+                    assert!(e.to_string().contains("not a regular file"), "{e}")
+                }
+                other => panic!("{other:?}"),
+            }
+        }
     }
 
     #[test]
