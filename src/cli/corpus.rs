@@ -42,6 +42,7 @@ pub struct CorpusArgs {
 /// Writes the corpus and prints a summary of what was written.
 pub fn run(args: &CorpusArgs) -> anyhow::Result<()> {
     let summary = demo::write_corpus(&args.out, args.seed, args.count)
+        .map_err(super::input::write_failed)
         .with_context(|| format!("writing the demo corpus to {}", args.out.display()))?;
     let overall = summary.overall;
     println!(

@@ -6,7 +6,7 @@ use std::path::PathBuf;
 use anyhow::Context;
 use serde::Serialize;
 
-use super::input::{BadInput, CorpusInput, Format};
+use super::input::{BadInput, CorpusInput, Format, plot_failed};
 use crate::Label;
 use crate::model::LinearModel;
 use crate::model::file::load_model;
@@ -148,7 +148,8 @@ fn plot(dir: &std::path::Path, model: &LinearModel, scored: &Scored) -> anyhow::
         curve.auc(),
         &marks,
         FprScale::Log,
-    )?;
+    )
+    .map_err(plot_failed)?;
     let spam: Vec<f64> = scored
         .margins
         .iter()
@@ -167,7 +168,8 @@ fn plot(dir: &std::path::Path, model: &LinearModel, scored: &Scored) -> anyhow::
         .thresholds()
         .map(|t| vec![("tag", t.tag), ("quarantine", t.quarantine)])
         .unwrap_or_default();
-    write_score_histograms_svg(&dir.join("scores.svg"), &spam, &ham, &lines)?;
+    write_score_histograms_svg(&dir.join("scores.svg"), &spam, &ham, &lines)
+        .map_err(plot_failed)?;
     Ok(())
 }
 

@@ -3,7 +3,7 @@
 use std::io::Write;
 use std::path::PathBuf;
 
-use super::input::CorpusInput;
+use super::input::{CorpusInput, check_output, write_failed};
 use crate::Label;
 use crate::features::FeatureSpec;
 use crate::train::dataset::Dataset;
@@ -44,6 +44,9 @@ pub fn run(args: &FeaturesArgs) -> anyhow::Result<u8> {
     };
     spec.check_supported()
         .map_err(|e| super::input::BadInput(e.to_string()))?;
+    if let Some(out) = &args.out {
+        check_output(out)?;
+    }
     let data = args.input.load(&spec, false)?;
     let labels = data
         .labels
@@ -53,11 +56,7 @@ pub fn run(args: &FeaturesArgs) -> anyhow::Result<u8> {
     let dataset = Dataset::new(data.rows, labels, spec.dimensions())?;
     match &args.out {
         Some(path) => {
-            let file = std::fs::File::create(path)
-                .map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))?;
-            let mut w = std::io::BufWriter::new(file);
-            write_svmlight(&dataset, &mut w)?;
-            w.flush()?;
+            crate::fsio::write_file(path, |w| write_svmlight(&dataset, w)).map_err(write_failed)?
         }
         None => {
             let stdout = std::io::stdout();

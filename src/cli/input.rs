@@ -1,10 +1,11 @@
 //! Shared command-line pieces: the corpus arguments, loading with problem reports, and
 //! the bad-input error that maps to exit code 2.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use crate::Label;
 use crate::features::FeatureSpec;
+use crate::fsio::{FsioError, Problem};
 use crate::train::corpus::plan;
 use crate::train::vectorize::{LabelledVectors, vectorize_plan};
 
@@ -12,6 +13,29 @@ use crate::train::vectorize::{LabelledVectors, vectorize_plan};
 #[derive(Debug, thiserror::Error)]
 #[error("{0}")]
 pub struct BadInput(pub String);
+
+/// Checks an output path given on the command line before any long work: a link, folder,
+/// FIFO or device at it, or a missing folder, is bad input reported at once.
+pub fn check_output(path: &Path) -> Result<(), BadInput> {
+    crate::fsio::check_target(path).map_err(|e| BadInput(e.to_string()))
+}
+
+/// Maps a failed write: a refused target is bad input (exit 2), anything else — a full
+/// disk, a permission — an operational failure (exit 1).
+pub fn write_failed(e: FsioError) -> anyhow::Error {
+    match e.problem {
+        Problem::NotRegular { .. } => BadInput(e.to_string()).into(),
+        _ => e.into(),
+    }
+}
+
+/// Maps a failed chart the way [`write_failed`] maps a failed write.
+pub fn plot_failed(e: crate::train::plots::PlotError) -> anyhow::Error {
+    match e {
+        crate::train::plots::PlotError::Write(e) => write_failed(e),
+        other => other.into(),
+    }
+}
 
 /// Where labelled mail comes from.
 #[derive(clap::Args, Debug, Clone)]

@@ -6,10 +6,12 @@ use std::time::Instant;
 use anyhow::Context;
 use serde::Serialize;
 
-use super::input::{BadInput, CorpusInput, Format, peak_memory_bytes};
+use super::input::{
+    BadInput, CorpusInput, Format, check_output, peak_memory_bytes, plot_failed, write_failed,
+};
 use crate::Label;
 use crate::features::{FeatureSpec, SparseVector};
-use crate::model::file::save_model;
+use crate::model::file::{ModelFileError, save_model};
 use crate::model::{Calibration, LinearModel, Thresholds, TrainingSummary};
 use crate::train::dataset::Dataset;
 use crate::train::platt::fit_platt;
@@ -232,7 +234,10 @@ pub fn run(args: &TrainArgs) -> anyhow::Result<u8> {
         Some(thresholds),
         summary,
     )?;
-    save_model(&model, &args.out)?;
+    save_model(&model, &args.out).map_err(|e| match e {
+        ModelFileError::File(e) => write_failed(e),
+        other => other.into(),
+    })?;
 
     let report = Report {
         model: args.out.display().to_string(),
@@ -261,6 +266,8 @@ pub fn run(args: &TrainArgs) -> anyhow::Result<u8> {
 
 fn validate(args: &TrainArgs) -> anyhow::Result<()> {
     let bad = |m: String| Err(BadInput(m).into());
+    // An output that cannot be written fails now, not after the training.
+    check_output(&args.out)?;
     if args.svmlight.is_none() && args.input.is_empty() {
         return bad("no training mail: give --spam PATH... --ham PATH..., --labels FILE, or --svmlight FILE".into());
     }
@@ -359,8 +366,11 @@ fn write_report(
     positive: &[bool],
 ) -> anyhow::Result<()> {
     std::fs::create_dir_all(dir).with_context(|| format!("create {}", dir.display()))?;
-    std::fs::write(dir.join("report.json"), serde_json::to_vec_pretty(report)?)
-        .with_context(|| format!("write {}", dir.join("report.json").display()))?;
+    crate::fsio::write_bytes(
+        &dir.join("report.json"),
+        &serde_json::to_vec_pretty(report)?,
+    )
+    .map_err(write_failed)?;
     let marks = [
         ("quarantine", curve.tpr_at_fpr(0.001)?),
         ("tag", curve.tpr_at_fpr(0.01)?),
@@ -371,7 +381,8 @@ fn write_report(
         curve.auc(),
         &marks,
         FprScale::Log,
-    )?;
+    )
+    .map_err(plot_failed)?;
     let class = |want: bool| -> Vec<f64> {
         margins
             .iter()
@@ -389,7 +400,8 @@ fn write_report(
             ("tag", report.thresholds.tag),
             ("quarantine", report.thresholds.quarantine),
         ],
-    )?;
+    )
+    .map_err(plot_failed)?;
     Ok(())
 }
 

@@ -7,7 +7,7 @@ use std::path::PathBuf;
 use serde::Serialize;
 
 use super::eval::score_corpus;
-use super::input::{BadInput, CorpusInput, Format};
+use super::input::{BadInput, CorpusInput, Format, check_output, write_failed};
 use crate::model::file::load_model;
 use crate::train::tune::{DomainThresholds, TuneTarget, policy_snippet, tune_domain};
 
@@ -59,6 +59,9 @@ pub fn run(args: &TuneArgs) -> anyhow::Result<u8> {
             "--tag-fpr must be at least --target-fpr: tagging is the milder action".into(),
         )
         .into());
+    }
+    if let Some(out) = &args.out {
+        check_output(out)?;
     }
     let model = load_model(&args.model).map_err(|e| BadInput(e.to_string()))?;
     let scored = score_corpus(&model, &args.input)?;
@@ -115,9 +118,7 @@ pub fn run(args: &TuneArgs) -> anyhow::Result<u8> {
         }
     };
     match &args.out {
-        Some(path) => {
-            std::fs::write(path, text).map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))?
-        }
+        Some(path) => crate::fsio::write_bytes(path, text.as_bytes()).map_err(write_failed)?,
         None => print!("{text}"),
     }
     for d in std::iter::once(&default).chain(&domains) {

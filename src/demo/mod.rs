@@ -23,7 +23,6 @@ mod spam;
 
 use std::collections::BTreeMap;
 use std::fs;
-use std::io::{self, Write};
 use std::path::Path;
 
 use crate::label::Label;
@@ -93,16 +92,27 @@ pub fn generate(seed: u64, count: usize) -> impl Iterator<Item = DemoMessage> {
 /// Writes `DIR/spam/NAME`, `DIR/ham/NAME` and `DIR/labels.tsv` (lines:
 /// `relative/path<TAB>spam|ham<TAB>domain`) and returns the counts.
 ///
-/// Existing files of the same names are overwritten; other files in `dir` are left alone.
-pub fn write_corpus(dir: &Path, seed: u64, count: usize) -> io::Result<CorpusSummary> {
-    fs::create_dir_all(dir.join("spam"))?;
-    fs::create_dir_all(dir.join("ham"))?;
-    let mut labels = io::BufWriter::new(fs::File::create(dir.join(LABELS_FILE))?);
+/// Existing files of the same names are replaced; other files in `dir` are left alone. Every
+/// file goes through [`crate::fsio::write_bytes`], so a link or device planted at one of the
+/// names is refused, not followed.
+pub fn write_corpus(
+    dir: &Path,
+    seed: u64,
+    count: usize,
+) -> Result<CorpusSummary, crate::fsio::FsioError> {
+    for sub in ["spam", "ham"] {
+        let folder = dir.join(sub);
+        fs::create_dir_all(&folder)
+            .map_err(|e| crate::fsio::FsioError::io(&folder, "create the folder", e))?;
+    }
+    // A bad labels path fails before thousands of messages are written.
+    crate::fsio::check_target(&dir.join(LABELS_FILE))?;
+    let mut labels = String::new();
     let mut summary = CorpusSummary::default();
     for msg in generate(seed, count) {
         let rel = format!("{}/{}", msg.label.as_str(), msg.name);
-        fs::write(dir.join(&rel), &msg.bytes)?;
-        writeln!(labels, "{rel}\t{}\t{}", msg.label.as_str(), msg.domain)?;
+        crate::fsio::write_bytes(&dir.join(&rel), &msg.bytes)?;
+        labels.push_str(&format!("{rel}\t{}\t{}\n", msg.label.as_str(), msg.domain));
         summary.overall.add(msg.label);
         summary
             .per_domain
@@ -111,7 +121,7 @@ pub fn write_corpus(dir: &Path, seed: u64, count: usize) -> io::Result<CorpusSum
             .add(msg.label);
         summary.bytes += msg.bytes.len() as u64;
     }
-    labels.flush()?;
+    crate::fsio::write_bytes(&dir.join(LABELS_FILE), labels.as_bytes())?;
     Ok(summary)
 }
 

@@ -4,7 +4,9 @@
 //! Mail operators live at the far left of the ROC curve (false-positive rates of 1e-4 to
 //! 1e-2), which a linear axis squeezes into a few pixels; [`FprScale::Log`] gives that
 //! region most of the width. Only the SVG backend of `plotters` is used, so no font or
-//! image libraries are needed; the viewer renders the text.
+//! image libraries are needed; the viewer renders the text. Each chart is drawn in memory
+//! and written through [`crate::fsio`], so a link or device planted at the chart's path is
+//! refused rather than followed.
 
 use std::path::Path;
 
@@ -44,7 +46,7 @@ pub enum PlotError {
         /// The value.
         value: f64,
     },
-    /// Drawing or writing the file failed.
+    /// The drawing library failed.
     #[error("cannot draw {path}: {message}")]
     Draw {
         /// The file being written.
@@ -52,6 +54,9 @@ pub enum PlotError {
         /// What the drawing library reported.
         message: String,
     },
+    /// The chart could not be written to its file.
+    #[error(transparent)]
+    Write(#[from] crate::fsio::FsioError),
 }
 
 /// How the false-positive-rate axis of a ROC chart is scaled.
@@ -84,7 +89,8 @@ fn percent(rate: f64) -> String {
 /// each `(label, point)` of `marks` drawn as a dot with its rates and threshold.
 ///
 /// # Errors
-/// [`PlotError::Draw`] when the file cannot be written.
+/// [`PlotError::Draw`] when drawing fails, [`PlotError::Write`] when the file cannot be
+/// written (or its path is a link, folder, FIFO or device).
 pub fn write_roc_svg(
     path: &Path,
     curve: &RocCurve,
@@ -93,43 +99,47 @@ pub fn write_roc_svg(
     scale: FprScale,
 ) -> Result<(), PlotError> {
     let fail = draw_error(path);
-    let root = SVGBackend::new(path, SIZE).into_drawing_area();
-    root.fill(&WHITE).map_err(|e| fail(&e))?;
-    let caption = format!(
-        "ROC curve: {} spam, {} ham",
-        curve.positives(),
-        curve.negatives()
-    );
-    match scale {
-        FprScale::Linear => {
-            let chart = roc_chart::<RangedCoordf64, _>(&root, &caption, 0.0..1.0)?;
-            let x_desc = "False-positive rate (share of ham marked as spam)";
-            draw_roc(chart, x_desc, curve, auc, marks, |f| f, path)?;
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, SIZE).into_drawing_area();
+        root.fill(&WHITE).map_err(|e| fail(&e))?;
+        let caption = format!(
+            "ROC curve: {} spam, {} ham",
+            curve.positives(),
+            curve.negatives()
+        );
+        match scale {
+            FprScale::Linear => {
+                let chart = roc_chart::<RangedCoordf64, _>(&root, &caption, 0.0..1.0)?;
+                let x_desc = "False-positive rate (share of ham marked as spam)";
+                draw_roc(chart, x_desc, curve, auc, marks, |f| f, path)?;
+            }
+            FprScale::Log => {
+                let smallest = curve
+                    .points()
+                    .iter()
+                    .map(|p| p.fpr)
+                    .find(|&f| f > 0.0)
+                    .unwrap_or(1e-4);
+                // Round down to a power of ten so the axis starts on a labelled decade.
+                let left = 1e-4_f64.min(10f64.powf(smallest.log10().floor()));
+                let chart =
+                    roc_chart::<LogCoord<f64>, _>(&root, &caption, (left..1.0).log_scale())?;
+                let x_desc = "False-positive rate (share of ham marked as spam; log scale, 0 at the left edge)";
+                draw_roc(
+                    chart,
+                    x_desc,
+                    curve,
+                    auc,
+                    marks,
+                    move |f: f64| f.max(left),
+                    path,
+                )?;
+            }
         }
-        FprScale::Log => {
-            let smallest = curve
-                .points()
-                .iter()
-                .map(|p| p.fpr)
-                .find(|&f| f > 0.0)
-                .unwrap_or(1e-4);
-            // Round down to a power of ten so the axis starts on a labelled decade.
-            let left = 1e-4_f64.min(10f64.powf(smallest.log10().floor()));
-            let chart = roc_chart::<LogCoord<f64>, _>(&root, &caption, (left..1.0).log_scale())?;
-            let x_desc =
-                "False-positive rate (share of ham marked as spam; log scale, 0 at the left edge)";
-            draw_roc(
-                chart,
-                x_desc,
-                curve,
-                auc,
-                marks,
-                move |f: f64| f.max(left),
-                path,
-            )?;
-        }
+        root.present().map_err(|e| fail(&e))?;
     }
-    root.present().map_err(|e| fail(&e))?;
+    crate::fsio::write_bytes(path, svg.as_bytes())?;
     Ok(())
 }
 
@@ -264,7 +274,8 @@ fn check_finite(scores: &[f64], class: Class) -> Result<(), PlotError> {
 ///
 /// # Errors
 /// [`PlotError::Input`] with [`EvalError::Empty`] when both lists are empty,
-/// [`PlotError::NonFiniteScore`], or [`PlotError::Draw`] when the file cannot be written.
+/// [`PlotError::NonFiniteScore`], [`PlotError::Draw`] when drawing fails, or
+/// [`PlotError::Write`] when the file cannot be written.
 pub fn write_score_histograms_svg(
     path: &Path,
     spam_scores: &[f64],
@@ -303,82 +314,86 @@ pub fn write_score_histograms_svg(
     let top = spam.iter().chain(&ham).fold(0.0_f64, |m, &v| m.max(v)) * 1.12;
 
     let fail = draw_error(path);
-    let root = SVGBackend::new(path, SIZE).into_drawing_area();
-    root.fill(&WHITE).map_err(|e| fail(&e))?;
-    let mut chart = ChartBuilder::on(&root)
-        .caption("Scores of spam and ham", ("sans-serif", 24))
-        .margin(20)
-        .x_label_area_size(55)
-        .y_label_area_size(70)
-        .build_cartesian_2d(lo..hi, 0.0..top.max(1e-9))
-        .map_err(|e| fail(&e))?;
-    chart
-        .configure_mesh()
-        .x_desc("Score (margin of the model)")
-        .y_desc("Share of the messages of each class")
-        .y_label_formatter(&|v| percent(*v))
-        .axis_desc_style(("sans-serif", 18))
-        .label_style(("sans-serif", 14))
-        .light_line_style(WHITE.mix(0.0))
-        .draw()
-        .map_err(|e| fail(&e))?;
-
-    for (shares, color, name, count) in [
-        (&ham, HAM_COLOR, "ham", ham_scores.len()),
-        (&spam, SPAM_COLOR, "spam", spam_scores.len()),
-    ] {
-        let bars = shares
-            .iter()
-            .enumerate()
-            .filter(|(_, v)| **v > 0.0)
-            .map(|(i, &v)| {
-                let x0 = lo + width * i as f64;
-                Rectangle::new([(x0, 0.0), (x0 + width, v)], color.mix(0.35).filled())
-            });
-        chart
-            .draw_series(bars)
-            .map_err(|e| fail(&e))?
-            .label(format!("{name} ({count} messages)"))
-            .legend(move |(x, y)| {
-                Rectangle::new([(x, y - 6), (x + 20, y + 6)], color.mix(0.35).filled())
-            });
-        // An outline on top keeps each class readable where the two overlap.
-        let outline = shares.iter().enumerate().flat_map(|(i, &v)| {
-            let x0 = lo + width * i as f64;
-            [(x0, v), (x0 + width, v)]
-        });
-        let outline: Vec<(f64, f64)> = std::iter::once((lo, 0.0))
-            .chain(outline)
-            .chain(std::iter::once((hi, 0.0)))
-            .collect();
-        chart
-            .draw_series(LineSeries::new(outline, color.stroke_width(2)))
+    let mut svg = String::new();
+    {
+        let root = SVGBackend::with_string(&mut svg, SIZE).into_drawing_area();
+        root.fill(&WHITE).map_err(|e| fail(&e))?;
+        let mut chart = ChartBuilder::on(&root)
+            .caption("Scores of spam and ham", ("sans-serif", 24))
+            .margin(20)
+            .x_label_area_size(55)
+            .y_label_area_size(70)
+            .build_cartesian_2d(lo..hi, 0.0..top.max(1e-9))
             .map_err(|e| fail(&e))?;
-    }
-
-    for (i, &(label, t)) in thresholds.iter().enumerate() {
-        if !t.is_finite() {
-            continue;
-        }
-        let color = MARK_COLORS[i % MARK_COLORS.len()];
         chart
-            .draw_series(LineSeries::new([(t, 0.0), (t, top)], color.stroke_width(2)))
-            .map_err(|e| fail(&e))?
-            .label(format!("{label} threshold {t:.4}"))
-            .legend(move |(x, y)| {
-                PathElement::new(vec![(x, y), (x + 20, y)], color.stroke_width(2))
-            });
-    }
+            .configure_mesh()
+            .x_desc("Score (margin of the model)")
+            .y_desc("Share of the messages of each class")
+            .y_label_formatter(&|v| percent(*v))
+            .axis_desc_style(("sans-serif", 18))
+            .label_style(("sans-serif", 14))
+            .light_line_style(WHITE.mix(0.0))
+            .draw()
+            .map_err(|e| fail(&e))?;
 
-    chart
-        .configure_series_labels()
-        .position(SeriesLabelPosition::UpperRight)
-        .label_font(("sans-serif", 15))
-        .background_style(WHITE.mix(0.9))
-        .border_style(BLACK.mix(0.5))
-        .draw()
-        .map_err(|e| fail(&e))?;
-    root.present().map_err(|e| fail(&e))?;
+        for (shares, color, name, count) in [
+            (&ham, HAM_COLOR, "ham", ham_scores.len()),
+            (&spam, SPAM_COLOR, "spam", spam_scores.len()),
+        ] {
+            let bars = shares
+                .iter()
+                .enumerate()
+                .filter(|(_, v)| **v > 0.0)
+                .map(|(i, &v)| {
+                    let x0 = lo + width * i as f64;
+                    Rectangle::new([(x0, 0.0), (x0 + width, v)], color.mix(0.35).filled())
+                });
+            chart
+                .draw_series(bars)
+                .map_err(|e| fail(&e))?
+                .label(format!("{name} ({count} messages)"))
+                .legend(move |(x, y)| {
+                    Rectangle::new([(x, y - 6), (x + 20, y + 6)], color.mix(0.35).filled())
+                });
+            // An outline on top keeps each class readable where the two overlap.
+            let outline = shares.iter().enumerate().flat_map(|(i, &v)| {
+                let x0 = lo + width * i as f64;
+                [(x0, v), (x0 + width, v)]
+            });
+            let outline: Vec<(f64, f64)> = std::iter::once((lo, 0.0))
+                .chain(outline)
+                .chain(std::iter::once((hi, 0.0)))
+                .collect();
+            chart
+                .draw_series(LineSeries::new(outline, color.stroke_width(2)))
+                .map_err(|e| fail(&e))?;
+        }
+
+        for (i, &(label, t)) in thresholds.iter().enumerate() {
+            if !t.is_finite() {
+                continue;
+            }
+            let color = MARK_COLORS[i % MARK_COLORS.len()];
+            chart
+                .draw_series(LineSeries::new([(t, 0.0), (t, top)], color.stroke_width(2)))
+                .map_err(|e| fail(&e))?
+                .label(format!("{label} threshold {t:.4}"))
+                .legend(move |(x, y)| {
+                    PathElement::new(vec![(x, y), (x + 20, y)], color.stroke_width(2))
+                });
+        }
+
+        chart
+            .configure_series_labels()
+            .position(SeriesLabelPosition::UpperRight)
+            .label_font(("sans-serif", 15))
+            .background_style(WHITE.mix(0.9))
+            .border_style(BLACK.mix(0.5))
+            .draw()
+            .map_err(|e| fail(&e))?;
+        root.present().map_err(|e| fail(&e))?;
+    }
+    crate::fsio::write_bytes(path, svg.as_bytes())?;
     Ok(())
 }
 

@@ -7,6 +7,7 @@ mod cpython_email;
 mod daemon;
 mod demo_corpus;
 mod eval_reference;
+mod hardening_files;
 mod html;
 pub mod invariance;
 mod mime;

@@ -1,0 +1,312 @@
+//! Files, reads and daemon operation under a careless operator or a hostile local user:
+//! writes that must not follow planted links or land on devices, reads of model, config and
+//! labels files that must stay bounded in size and time, a reload that must not block
+//! shutdown, a metrics port that must not starve the relay port, and the errors of `tamis
+//! check` and `tamis train`.
+//!
+//! Every subprocess runs under a deadline, so a regression shows as a failed test rather than
+//! a hung suite; reads that used to grow without bound run under an address-space limit, so
+//! a regression shows as a failed test rather than a machine out of memory.
+
+use std::io::{Read, Write};
+use std::net::{SocketAddr, TcpListener, TcpStream};
+use std::os::unix::fs::FileTypeExt;
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Output, Stdio};
+use std::sync::{Arc, OnceLock};
+use std::time::{Duration, Instant};
+
+use bytes::BytesMut;
+use tamis::config::Config;
+use tamis::metrics::Metrics;
+use tamis::model::LinearModel;
+use tamis::proto::client::Client;
+use tamis::proto::{Frame, encode_frame, parse_frame};
+use tamis::server::engine::{Decisions, Engine, SharedEngine};
+
+fn tamis() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_tamis"))
+}
+
+fn s(p: &Path) -> &str {
+    p.to_str().expect("UTF-8 temp path")
+}
+
+/// Runs `cmd` to completion within `limit`, or kills it and fails the test.
+fn run_within(mut cmd: Command, limit: Duration) -> Output {
+    let child = cmd
+        .stdin(Stdio::null())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("start tamis");
+    let pid = child.id();
+    let (tx, rx) = std::sync::mpsc::channel();
+    std::thread::spawn(move || {
+        let _ = tx.send(child.wait_with_output());
+    });
+    match rx.recv_timeout(limit) {
+        Ok(output) => output.expect("wait for tamis"),
+        Err(_) => {
+            let _ = Command::new("kill")
+                .args(["-KILL", &pid.to_string()])
+                .status();
+            panic!("tamis {cmd:?} did not finish within {limit:?}");
+        }
+    }
+}
+
+/// `tamis ARGS` with a deadline.
+fn run(args: &[&str]) -> Output {
+    let mut cmd = tamis();
+    cmd.args(args);
+    run_within(cmd, Duration::from_secs(60))
+}
+
+/// `tamis ARGS` with at most 1 GiB of address space: an unbounded read of a huge or endless
+/// file then fails to allocate instead of taking the machine's memory.
+fn run_small(args: &[&str]) -> Output {
+    let mut cmd = Command::new("sh");
+    cmd.arg("-c")
+        .arg("ulimit -v 1048576 && exec \"$0\" \"$@\"")
+        .arg(env!("CARGO_BIN_EXE_tamis"))
+        .args(args);
+    run_within(cmd, Duration::from_secs(30))
+}
+
+/// The standard error of `out`, cut to a readable length for assertion messages.
+fn stderr(out: &Output) -> String {
+    let text = String::from_utf8_lossy(&out.stderr);
+    let cut: String = text.chars().take(4000).collect();
+    cut
+}
+
+fn assert_untouched(victim: &Path) {
+    let bytes = std::fs::read(victim).expect("victim");
+    assert!(
+        bytes == b"precious",
+        "the link's target was overwritten ({} bytes)",
+        bytes.len()
+    );
+}
+
+fn mkfifo(path: &Path) {
+    let ok = Command::new("mkfifo")
+        .arg(path)
+        .status()
+        .expect("mkfifo")
+        .success();
+    assert!(ok, "mkfifo {}", path.display());
+}
+
+fn is_fifo(path: &Path) -> bool {
+    std::fs::symlink_metadata(path).is_ok_and(|m| m.file_type().is_fifo())
+}
+
+fn is_symlink(path: &Path) -> bool {
+    std::fs::symlink_metadata(path).is_ok_and(|m| m.file_type().is_symlink())
+}
+
+/// A small separable svmlight file: trains in a blink with `--ngram 1 --folds 2`.
+fn tiny_svmlight(dir: &Path) -> PathBuf {
+    let path = dir.join("tiny.svm");
+    let mut text = String::new();
+    for i in 0..8 {
+        text.push_str(&format!("+1 {}:1 {}:0.5\n", 1 + i % 3, 10 + i));
+        text.push_str(&format!("-1 {}:1 {}:0.5\n", 100 + i % 3, 200 + i));
+    }
+    std::fs::write(&path, text).expect("write svmlight");
+    path
+}
+
+fn train_args<'a>(svm: &'a Path, out: &'a Path) -> Vec<&'a str> {
+    vec![
+        "train",
+        "--svmlight",
+        s(svm),
+        "--ngram",
+        "1",
+        "--hash-bits",
+        "10",
+        "--c",
+        "1",
+        "--folds",
+        "2",
+        "--out",
+        s(out),
+    ]
+}
+
+/// A model trained on the tiny svmlight file, and a small invented corpus to run it on.
+struct Kit {
+    _dir: tempfile::TempDir,
+    model: PathBuf,
+    labels: PathBuf,
+}
+
+fn kit() -> &'static Kit {
+    static KIT: OnceLock<Kit> = OnceLock::new();
+    KIT.get_or_init(|| {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let svm = tiny_svmlight(dir.path());
+        let model = dir.path().join("tiny.tamis");
+        let out = run(&train_args(&svm, &model));
+        assert!(out.status.success(), "{}", stderr(&out));
+        let corpus = dir.path().join("corpus");
+        let out = run(&["corpus", "--out", s(&corpus), "--count", "40"]);
+        assert!(out.status.success(), "{}", stderr(&out));
+        Kit {
+            labels: corpus.join("labels.tsv"),
+            model,
+            _dir: dir,
+        }
+    })
+}
+
+/// Item 4: every file the tool writes goes through one writer that neither follows a planted
+/// link nor lands on a device, FIFO or folder.
+mod safe_writes {
+    use super::*;
+
+    #[test]
+    fn train_out_ignores_a_symlink_planted_at_the_old_temporary_name() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let svm = tiny_svmlight(dir.path());
+        let victim = dir.path().join("victim");
+        std::fs::write(&victim, b"precious").expect("victim");
+        let out_path = dir.path().join("model.tamis");
+        std::os::unix::fs::symlink(&victim, dir.path().join("model.tamis.tmp")).expect("link");
+        let out = run(&train_args(&svm, &out_path));
+        assert!(out.status.success(), "{}", stderr(&out));
+        assert_untouched(&victim);
+        assert!(tamis::model::file::load_model(&out_path).is_ok());
+        // No temporary file is left beside the model.
+        let names: Vec<String> = std::fs::read_dir(dir.path())
+            .expect("list")
+            .map(|e| e.expect("entry").file_name().to_string_lossy().into_owned())
+            .collect();
+        assert!(
+            !names
+                .iter()
+                .any(|n| n.ends_with(".tmp") && n != "model.tamis.tmp"),
+            "{names:?}"
+        );
+    }
+
+    #[test]
+    fn train_out_refuses_a_symlink_fifo_or_folder_at_the_target() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let svm = tiny_svmlight(dir.path());
+        let victim = dir.path().join("victim");
+        std::fs::write(&victim, b"precious").expect("victim");
+        let link = dir.path().join("link.tamis");
+        std::os::unix::fs::symlink(&victim, &link).expect("link");
+        let fifo = dir.path().join("fifo.tamis");
+        mkfifo(&fifo);
+        let folder = dir.path().join("folder.tamis");
+        std::fs::create_dir(&folder).expect("folder");
+        for (target, kind) in [
+            (&link, "symbolic link"),
+            (&fifo, "FIFO"),
+            (&folder, "folder"),
+        ] {
+            let out = run(&train_args(&svm, target));
+            let err = stderr(&out);
+            assert_eq!(out.status.code(), Some(2), "{err}");
+            assert!(err.contains(s(target)) && err.contains(kind), "{err}");
+        }
+        assert!(is_symlink(&link) && is_fifo(&fifo) && folder.is_dir());
+        assert_untouched(&victim);
+    }
+
+    #[test]
+    fn features_and_tune_refuse_a_fifo_target() {
+        let kit = kit();
+        let dir = tempfile::tempdir().expect("temp dir");
+        let fifo = dir.path().join("out");
+        mkfifo(&fifo);
+        let features = run(&[
+            "features",
+            "--labels",
+            s(&kit.labels),
+            "--hash-bits",
+            "10",
+            "--out",
+            s(&fifo),
+        ]);
+        let tune = run(&[
+            "tune",
+            "--model",
+            s(&kit.model),
+            "--labels",
+            s(&kit.labels),
+            "--out",
+            s(&fifo),
+        ]);
+        for out in [features, tune] {
+            let err = stderr(&out);
+            assert_eq!(out.status.code(), Some(2), "{err}");
+            assert!(err.contains(s(&fifo)) && err.contains("FIFO"), "{err}");
+        }
+        assert!(is_fifo(&fifo));
+    }
+
+    #[test]
+    fn reports_plots_and_corpus_files_do_not_follow_planted_links() {
+        let kit = kit();
+        let dir = tempfile::tempdir().expect("temp dir");
+        let victim = dir.path().join("victim");
+        std::fs::write(&victim, b"precious").expect("victim");
+        // eval --plot DIR with DIR/roc.svg planted.
+        let plots = dir.path().join("plots");
+        std::fs::create_dir(&plots).expect("plots");
+        std::os::unix::fs::symlink(&victim, plots.join("roc.svg")).expect("link");
+        let out = run(&[
+            "eval",
+            "--model",
+            s(&kit.model),
+            "--labels",
+            s(&kit.labels),
+            "--plot",
+            s(&plots),
+        ]);
+        assert_ne!(out.status.code(), Some(0));
+        assert!(stderr(&out).contains("roc.svg"), "{}", stderr(&out));
+        // train --report DIR with DIR/report.json planted.
+        let report = dir.path().join("report");
+        std::fs::create_dir(&report).expect("report");
+        std::os::unix::fs::symlink(&victim, report.join("report.json")).expect("link");
+        let svm = tiny_svmlight(dir.path());
+        let model = dir.path().join("m.tamis");
+        let mut args = train_args(&svm, &model);
+        args.extend(["--report", s(&report)]);
+        let out = run(&args);
+        assert_ne!(out.status.code(), Some(0));
+        assert!(stderr(&out).contains("report.json"), "{}", stderr(&out));
+        // corpus --out DIR with DIR/labels.tsv planted.
+        let corpus = dir.path().join("corpus");
+        std::fs::create_dir(&corpus).expect("corpus");
+        std::os::unix::fs::symlink(&victim, corpus.join("labels.tsv")).expect("link");
+        let out = run(&["corpus", "--out", s(&corpus), "--count", "5"]);
+        assert_ne!(out.status.code(), Some(0));
+        assert!(stderr(&out).contains("labels.tsv"), "{}", stderr(&out));
+        assert_untouched(&victim);
+    }
+}
+
+/// Item 11: `tamis check` and `tamis train` report each failure once, clearly.
+mod cli_errors {
+    use super::*;
+
+    #[test]
+    fn train_out_a_folder_prints_its_error_once_before_training() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let svm = tiny_svmlight(dir.path());
+        let out = run(&train_args(&svm, dir.path()));
+        let err = stderr(&out);
+        assert_eq!(out.status.code(), Some(2), "{err}");
+        assert_eq!(err.lines().count(), 1, "{err}");
+        assert_eq!(err.matches("folder").count(), 1, "{err}");
+        assert!(out.stdout.is_empty(), "nothing was trained");
+    }
+}
