@@ -79,6 +79,10 @@ pub struct Config {
     pub logging: Logging,
 }
 
+/// Largest configuration file read: far above any real one, small enough never to strain
+/// memory.
+pub const MAX_CONFIG_BYTES: u64 = 1 << 20;
+
 impl Default for Config {
     /// Built-in defaults: TCP and metrics on loopback only, the limits of
     /// `proto/PROTOCOL.md` §3, the built-in demonstration model, a tag-only policy,
@@ -100,10 +104,28 @@ impl Default for Config {
 impl Config {
     /// Reads and validates a configuration file. Relative paths inside it are resolved
     /// against the folder the file is in.
+    ///
+    /// The read is bounded: anything but a regular file is refused without blocking (a
+    /// FIFO), a file over [`MAX_CONFIG_BYTES`] is refused before it is read, and a read that
+    /// stalls is abandoned after [`crate::fsio::READ_TIMEOUT`].
     pub fn load(path: &Path) -> Result<Config, ConfigError> {
-        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+        let read_error = |kind, message: String| ConfigError::Read {
             path: path.to_path_buf(),
-            source,
+            source: std::io::Error::new(kind, message),
+        };
+        let owned = path.to_path_buf();
+        let bytes = crate::fsio::with_deadline(path, crate::fsio::READ_TIMEOUT, move || {
+            crate::fsio::read_regular(&owned, MAX_CONFIG_BYTES, "a configuration file")
+        })
+        .map_err(|e| read_error(e.kind(), e.problem.to_string()))?;
+        let text = String::from_utf8(bytes).map_err(|e| {
+            read_error(
+                std::io::ErrorKind::InvalidData,
+                format!(
+                    "it is not UTF-8 text (invalid byte at offset {})",
+                    e.utf8_error().valid_up_to()
+                ),
+            )
         })?;
         let absolute = std::path::absolute(path).unwrap_or_else(|_| path.to_path_buf());
         let mut config = parse(&text, &path.display().to_string())?;

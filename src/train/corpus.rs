@@ -3,15 +3,23 @@
 //!
 //! Reading is planned first ([`plan`]: which files, which label, which domain), then
 //! streamed ([`Plan::messages`]): one message in memory at a time per reader, each capped
-//! at the extraction limit, so a corpus of any size costs bounded memory. Paths that cannot
-//! be read are reported as [`Problem`]s with their path and skipped; the caller counts them.
+//! at the extraction limit, so a corpus of any size costs bounded memory. The labels file is
+//! streamed line by line, each line capped at [`MAX_LABELS_LINE_BYTES`], so a huge or endless
+//! file (a device, a file with no newline) fails at its first long line instead of filling
+//! memory. Paths that cannot be read are reported as [`Problem`]s with their path and
+//! skipped; the caller counts them.
 
 use std::collections::HashSet;
 use std::fs::File;
 use std::io::{BufRead, BufReader, Read};
 use std::path::{Path, PathBuf};
 
+use super::svmlight::{LineRead, read_bounded_line};
 use crate::Label;
+
+/// Longest accepted line of a labels file: a path of up to 4,096 bytes (Linux's `PATH_MAX`,
+/// from memory), a label and a domain, with room to spare.
+pub const MAX_LABELS_LINE_BYTES: usize = 8 * 1024;
 
 /// A path that could not be used, and why.
 #[derive(Debug, Clone, PartialEq, Eq)]
@@ -38,6 +46,18 @@ pub enum LabelsError {
         path: PathBuf,
         /// The I/O error.
         reason: String,
+    },
+    /// A line longer than [`MAX_LABELS_LINE_BYTES`]: not a labels file, or a damaged one.
+    #[error(
+        "{path}:{line}: line longer than {limit} bytes; is this a labels file? (expected lines `path<TAB>spam|ham[<TAB>domain]`)"
+    )]
+    LineTooLong {
+        /// The labels file.
+        path: PathBuf,
+        /// 1-based line number.
+        line: usize,
+        /// The limit in bytes.
+        limit: usize,
     },
     /// A line does not have the form `path<TAB>spam|ham[<TAB>domain]`.
     #[error("{path}:{line}:{column}: {reason} (expected `path<TAB>spam|ham[<TAB>domain]`)")]
@@ -133,15 +153,31 @@ fn read_labels(path: &Path) -> Result<Vec<LabelEntry>, LabelsError> {
         reason: e.to_string(),
     };
     let base = path.parent().unwrap_or(Path::new("."));
-    let reader = BufReader::new(File::open(path).map_err(unreadable)?);
+    let mut reader = BufReader::new(File::open(path).map_err(unreadable)?);
     let mut entries = Vec::new();
-    for (n, line) in reader.lines().enumerate() {
-        let line = line.map_err(unreadable)?;
+    let mut buf = Vec::new();
+    let mut n = 0;
+    loop {
+        n += 1;
+        match read_bounded_line(&mut reader, &mut buf, MAX_LABELS_LINE_BYTES).map_err(unreadable)? {
+            LineRead::Eof => break,
+            LineRead::Line => {}
+            LineRead::TooLong => {
+                return Err(LabelsError::LineTooLong {
+                    path: path.to_path_buf(),
+                    line: n,
+                    limit: MAX_LABELS_LINE_BYTES,
+                });
+            }
+        }
         let malformed = |column: usize, reason: String| LabelsError::Malformed {
             path: path.to_path_buf(),
-            line: n + 1,
+            line: n,
             column,
             reason,
+        };
+        let Ok(line) = std::str::from_utf8(&buf) else {
+            return Err(malformed(1, "the line is not UTF-8".into()));
         };
         let trimmed = line.trim_end_matches('\r');
         if trimmed.trim().is_empty() || trimmed.starts_with('#') {
@@ -464,6 +500,29 @@ mod tests {
     fn from_inside_a_paragraph_is_not_a_separator() {
         let mbox = "From a@example.org x\nSubject: one\n\ntext\nFrom the start\n";
         assert_eq!(split(mbox).len(), 1);
+    }
+
+    #[test]
+    fn labels_lines_are_capped_and_named_by_number() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let labels = dir.path().join("labels.tsv");
+        let long = "x".repeat(MAX_LABELS_LINE_BYTES + 1);
+        std::fs::write(&labels, format!("# corpus\n\n{long}\tspam\n")).expect("write");
+        match plan(&[], &[], Some(&labels)) {
+            Err(LabelsError::LineTooLong { line: 3, limit, .. }) => {
+                assert_eq!(limit, MAX_LABELS_LINE_BYTES)
+            }
+            other => panic!("{other:?}"),
+        }
+        std::fs::write(&labels, b"a.eml\tspam\n\xff.eml\tham\n").expect("write");
+        match plan(&[], &[], Some(&labels)) {
+            Err(LabelsError::Malformed {
+                line: 2, reason, ..
+            }) => {
+                assert!(reason.contains("UTF-8"), "{reason}")
+            }
+            other => panic!("{other:?}"),
+        }
     }
 
     #[test]

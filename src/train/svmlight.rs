@@ -210,14 +210,19 @@ pub fn write_svmlight(ds: &Dataset, mut out: impl Write) -> io::Result<()> {
     out.flush()
 }
 
-enum LineRead {
+/// What [`read_bounded_line`] found.
+pub(crate) enum LineRead {
+    /// A line, now in the buffer.
     Line,
+    /// The end of the input.
     Eof,
+    /// A line longer than the limit; the buffer holds part of it.
     TooLong,
 }
 
 /// Reads one line (without its `\n`) into `buf`, never holding more than `limit` bytes.
-fn read_bounded_line(
+/// Shared by the readers of line-oriented inputs (svmlight files, labels files).
+pub(crate) fn read_bounded_line(
     reader: &mut impl BufRead,
     buf: &mut Vec<u8>,
     limit: usize,

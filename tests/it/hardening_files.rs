@@ -294,6 +294,126 @@ mod safe_writes {
     }
 }
 
+/// Item 6: reads of model, labels, config and svmlight files are bounded before anything
+/// big is allocated.
+mod bounded_reads {
+    use super::*;
+
+    /// A valid model followed by a hole: 4 GiB on paper, a few blocks on disk.
+    fn swollen_model(dir: &Path) -> PathBuf {
+        let path = dir.join("swollen.tamis");
+        std::fs::copy(&kit().model, &path).expect("copy model");
+        let file = std::fs::OpenOptions::new()
+            .write(true)
+            .open(&path)
+            .expect("open");
+        file.set_len(4 << 30).expect("sparse extend");
+        path
+    }
+
+    #[test]
+    fn a_model_larger_than_its_header_declares_is_refused_unread() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let swollen = swollen_model(dir.path());
+        let started = Instant::now();
+        let out = run_small(&["score", "--model", s(&swollen), s(&kit().labels)]);
+        let err = stderr(&out);
+        assert_eq!(out.status.code(), Some(2), "{err}");
+        assert!(
+            err.contains(s(&swollen)) && err.contains("larger than its header declares"),
+            "{err}"
+        );
+        assert!(started.elapsed() < Duration::from_secs(10));
+    }
+
+    #[test]
+    fn a_device_as_model_is_refused_as_not_a_regular_file() {
+        let out = run_small(&["score", "--model", "/dev/zero", s(&kit().labels)]);
+        let err = stderr(&out);
+        assert_eq!(out.status.code(), Some(2), "{err}");
+        assert!(
+            err.contains("/dev/zero") && err.contains("not a regular file"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn an_endless_or_huge_labels_file_stops_at_the_line_cap() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let sparse = dir.path().join("labels.tsv");
+        std::fs::File::create(&sparse)
+            .expect("create")
+            .set_len(4 << 30)
+            .expect("sparse");
+        for labels in [Path::new("/dev/zero"), sparse.as_path()] {
+            let out = run_small(&["eval", "--model", s(&kit().model), "--labels", s(labels)]);
+            let err = stderr(&out);
+            assert_eq!(out.status.code(), Some(2), "{err}");
+            assert!(
+                err.contains(&format!("{}:1:", labels.display())) && err.contains("longer than"),
+                "{err}"
+            );
+        }
+    }
+
+    #[test]
+    fn a_long_labels_line_names_its_line_number() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let labels = dir.path().join("labels.tsv");
+        let long = "x".repeat(100_000);
+        std::fs::write(&labels, format!("# note\na.eml\tspam\n{long}\tham\n")).expect("write");
+        let out = run_small(&["eval", "--model", s(&kit().model), "--labels", s(&labels)]);
+        let err = stderr(&out);
+        assert_eq!(out.status.code(), Some(2), "{err}");
+        assert!(
+            err.contains(&format!("{}:3:", labels.display())) && err.contains("longer than"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn a_huge_or_special_config_file_is_refused() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let sparse = dir.path().join("tamis.toml");
+        std::fs::File::create(&sparse)
+            .expect("create")
+            .set_len(4 << 30)
+            .expect("sparse");
+        let fifo = dir.path().join("fifo.toml");
+        mkfifo(&fifo);
+        for (config, words) in [
+            (sparse.as_path(), "larger than"),
+            (fifo.as_path(), "not a regular file"),
+            (Path::new("/dev/zero"), "not a regular file"),
+        ] {
+            let out = run_small(&["config", "check", s(config)]);
+            let err = stderr(&out);
+            assert_eq!(out.status.code(), Some(2), "{err}");
+            assert!(err.contains(s(config)) && err.contains(words), "{err}");
+        }
+    }
+
+    #[test]
+    fn an_endless_svmlight_file_stops_at_the_line_cap() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let out = run_small(&[
+            "train",
+            "--svmlight",
+            "/dev/zero",
+            "--ngram",
+            "1",
+            "--out",
+            s(&dir.path().join("m")),
+        ]);
+        let err = stderr(&out);
+        assert_eq!(out.status.code(), Some(2), "{err}");
+        assert!(
+            err.contains("/dev/zero:1") && err.contains("longer than"),
+            "{err}"
+        );
+    }
+}
+
 /// Item 11: `tamis check` and `tamis train` report each failure once, clearly.
 mod cli_errors {
     use super::*;
