@@ -1,9 +1,19 @@
 //! `tamis serve`: the daemon a relay talks to.
+//!
+//! The signal loop only ever does instant work: SIGTERM and SIGINT start the shutdown at
+//! once, and SIGHUP only asks the [`Reloader`] for a reload. Reloads run on their own task,
+//! one at a time; SIGHUPs that arrive while one runs are coalesced into a single reload after
+//! it, so the newest files are always read and a stalled read never delays shutdown.
 
+use std::future::Future;
 use std::path::PathBuf;
 use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::time::Duration;
 
 use tokio::signal::unix::{SignalKind, signal};
+use tokio::sync::Notify;
+use tokio::task::JoinHandle;
 
 use super::input::BadInput;
 use crate::config::{Config, LogFormat};
@@ -61,7 +71,7 @@ pub fn run(args: &ServeArgs) -> anyhow::Result<u8> {
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()?;
-    runtime.block_on(async move {
+    let outcome = runtime.block_on(async move {
         let running = start(&config, shared.clone(), Arc::clone(&metrics)).await?;
         if let Some(addr) = running.tcp {
             eprintln!("tamis: relay protocol on tcp {addr}");
@@ -75,26 +85,87 @@ pub fn run(args: &ServeArgs) -> anyhow::Result<u8> {
         let mut terminate = signal(SignalKind::terminate())?;
         let mut interrupt = signal(SignalKind::interrupt())?;
         let mut hangup = signal(SignalKind::hangup())?;
+        let reloader = {
+            let (path, shared, metrics) =
+                (args.config.clone(), shared.clone(), Arc::clone(&metrics));
+            Reloader::spawn(move || reload(path.clone(), shared.clone(), Arc::clone(&metrics)))
+        };
         loop {
             tokio::select! {
                 _ = terminate.recv() => break,
                 _ = interrupt.recv() => break,
-                _ = hangup.recv() => reload(&args.config, &shared, &metrics).await,
+                _ = hangup.recv() => {
+                    if !reloader.request() {
+                        tracing::info!("a reload is already running; one more will follow it");
+                    }
+                }
             }
         }
+        // A reload still reading stays behind: the old engine keeps serving until the end.
+        reloader.stop();
         tracing::info!("shutting down: finishing open messages");
         let clean = running.stop().await;
         if !clean {
             tracing::warn!("grace period over: remaining connections were closed");
         }
         anyhow::Ok(super::EXIT_OK)
-    })
+    });
+    // A reload's read that stalled (see `crate::fsio::with_deadline`) must not keep the
+    // process alive: blocking tasks still running are left behind.
+    runtime.shutdown_timeout(Duration::from_millis(500));
+    outcome
+}
+
+/// Runs reloads on their own task, at most one at a time. Requests made while a reload runs
+/// leave one pending reload (however many arrive), which starts when the running one ends.
+struct Reloader {
+    wake: Arc<Notify>,
+    busy: Arc<AtomicBool>,
+    task: JoinHandle<()>,
+}
+
+impl Reloader {
+    /// Starts the task; each requested reload runs `reload()` to completion.
+    fn spawn<F, Fut>(reload: F) -> Reloader
+    where
+        F: Fn() -> Fut + Send + 'static,
+        Fut: Future<Output = ()> + Send + 'static,
+    {
+        let wake = Arc::new(Notify::new());
+        let busy = Arc::new(AtomicBool::new(false));
+        let task = tokio::spawn({
+            let (wake, busy) = (Arc::clone(&wake), Arc::clone(&busy));
+            async move {
+                loop {
+                    // `Notify` keeps at most one permit: requests made during a reload
+                    // coalesce into one.
+                    wake.notified().await;
+                    busy.store(true, Ordering::SeqCst);
+                    reload().await;
+                    busy.store(false, Ordering::SeqCst);
+                }
+            }
+        });
+        Reloader { wake, busy, task }
+    }
+
+    /// Asks for a reload without waiting for it. Returns false when one is already running
+    /// (this request then runs after it, merged with any others).
+    fn request(&self) -> bool {
+        let idle = !self.busy.load(Ordering::SeqCst);
+        self.wake.notify_one();
+        idle
+    }
+
+    /// Stops the task; a reload in progress is abandoned and nothing is swapped in.
+    fn stop(self) {
+        self.task.abort();
+    }
 }
 
 /// Builds the new engine from the configuration file and swaps it in; anything invalid
 /// leaves the old engine serving. Listener and limit changes need a restart.
-async fn reload(path: &Option<PathBuf>, shared: &SharedEngine, metrics: &Arc<Metrics>) {
-    let path = path.clone();
+async fn reload(path: Option<PathBuf>, shared: SharedEngine, metrics: Arc<Metrics>) {
     let built = tokio::task::spawn_blocking(move || -> anyhow::Result<_> {
         let config = load_config(&path)?;
         let engine = build_engine(&config)?;
@@ -103,7 +174,7 @@ async fn reload(path: &Option<PathBuf>, shared: &SharedEngine, metrics: &Arc<Met
     .await;
     match built {
         Ok(Ok((config, engine))) => {
-            describe_model(metrics, engine.model());
+            describe_model(&metrics, engine.model());
             metrics.set_domains(config.policy.domains().keys());
             let origin = engine.origin().to_string();
             shared.swap(engine);
@@ -118,5 +189,77 @@ async fn reload(path: &Option<PathBuf>, shared: &SharedEngine, metrics: &Arc<Met
             metrics.reload(ReloadOutcome::Failure);
             tracing::error!(error = %e, "reload task failed; the previous model keeps serving");
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::sync::atomic::AtomicUsize;
+    use tokio::sync::Semaphore;
+
+    async fn until(what: impl Fn() -> bool) {
+        for _ in 0..500 {
+            if what() {
+                return;
+            }
+            tokio::time::sleep(Duration::from_millis(10)).await;
+        }
+        panic!("condition not reached in 5 s");
+    }
+
+    #[tokio::test]
+    async fn a_blocked_reload_does_not_block_requests_and_requests_made_meanwhile_coalesce() {
+        let started = Arc::new(AtomicUsize::new(0));
+        let running = Arc::new(AtomicUsize::new(0));
+        let most_at_once = Arc::new(AtomicUsize::new(0));
+        // Each reload blocks until the test hands it a permit, as a stalled read would.
+        let gate = Arc::new(Semaphore::new(0));
+        let reloader = {
+            let (started, running, most_at_once, gate) = (
+                Arc::clone(&started),
+                Arc::clone(&running),
+                Arc::clone(&most_at_once),
+                Arc::clone(&gate),
+            );
+            Reloader::spawn(move || {
+                let (started, running, most_at_once, gate) = (
+                    Arc::clone(&started),
+                    Arc::clone(&running),
+                    Arc::clone(&most_at_once),
+                    Arc::clone(&gate),
+                );
+                async move {
+                    started.fetch_add(1, Ordering::SeqCst);
+                    let now = running.fetch_add(1, Ordering::SeqCst) + 1;
+                    most_at_once.fetch_max(now, Ordering::SeqCst);
+                    if let Ok(permit) = gate.acquire().await {
+                        permit.forget();
+                    }
+                    running.fetch_sub(1, Ordering::SeqCst);
+                }
+            })
+        };
+        assert!(reloader.request(), "idle: the reload starts");
+        until(|| started.load(Ordering::SeqCst) == 1).await;
+        // The first reload is stuck; further requests return at once and are merged.
+        assert!(!reloader.request());
+        assert!(!reloader.request());
+        assert!(!reloader.request());
+        gate.add_permits(1);
+        until(|| started.load(Ordering::SeqCst) == 2).await;
+        gate.add_permits(1);
+        until(|| running.load(Ordering::SeqCst) == 0).await;
+        tokio::time::sleep(Duration::from_millis(100)).await;
+        assert_eq!(
+            started.load(Ordering::SeqCst),
+            2,
+            "three requests, one reload"
+        );
+        assert_eq!(most_at_once.load(Ordering::SeqCst), 1, "never two at once");
+        // Stopping does not wait for a reload that is stuck.
+        assert!(reloader.request());
+        until(|| started.load(Ordering::SeqCst) == 3).await;
+        reloader.stop();
     }
 }

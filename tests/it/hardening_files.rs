@@ -414,6 +414,157 @@ mod bounded_reads {
     }
 }
 
+/// A configuration serving on free loopback ports, with `model` as its model file.
+fn serve_config(dir: &Path, model: &Path) -> (PathBuf, SocketAddr, SocketAddr) {
+    let (relay, status) = (free_port(), free_port());
+    let config = dir.join("tamis.toml");
+    std::fs::write(
+        &config,
+        format!(
+            "metrics = \"127.0.0.1:{status}\"\n[listen]\ntcp = \"127.0.0.1:{relay}\"\n[limits]\ngrace_period = \"3s\"\n[model]\npath = \"{}\"\n",
+            model.display()
+        ),
+    )
+    .expect("write config");
+    let addr = |p: u16| SocketAddr::from(([127, 0, 0, 1], p));
+    (config, addr(relay), addr(status))
+}
+
+fn free_port() -> u16 {
+    TcpListener::bind("127.0.0.1:0")
+        .expect("bind")
+        .local_addr()
+        .expect("addr")
+        .port()
+}
+
+fn built_in() -> &'static LinearModel {
+    static MODEL: OnceLock<LinearModel> = OnceLock::new();
+    MODEL.get_or_init(|| tamis::model::builtin::demonstration_model().expect("builds"))
+}
+
+fn message() -> Vec<u8> {
+    tamis::demo::generate(21, 1)
+        .last()
+        .expect("a message")
+        .bytes
+}
+
+/// Starts `sh -c "SETUP; exec tamis serve --config CONFIG"`.
+fn spawn_serve(setup: &str, config: &Path) -> Child {
+    Command::new("sh")
+        .arg("-c")
+        .arg(format!("{setup} exec \"$0\" serve --config \"$1\""))
+        .arg(env!("CARGO_BIN_EXE_tamis"))
+        .arg(config)
+        .stdin(Stdio::null())
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .expect("start the daemon")
+}
+
+fn wait_ready(daemon: &mut Child, relay: SocketAddr) {
+    for _ in 0..200 {
+        if let Some(exit) = daemon.try_wait().expect("poll") {
+            let mut err = String::new();
+            if let Some(mut e) = daemon.stderr.take() {
+                let _ = e.read_to_string(&mut err);
+            }
+            panic!("the daemon exited early ({exit:?}): {err}");
+        }
+        if TcpStream::connect(relay).is_ok() {
+            return;
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    panic!("the daemon did not start listening");
+}
+
+fn signal(daemon: &Child, name: &str) {
+    let ok = Command::new("kill")
+        .args([&format!("-{name}"), &daemon.id().to_string()])
+        .status()
+        .expect("kill")
+        .success();
+    assert!(ok, "kill -{name}");
+}
+
+/// Waits up to `limit` for the daemon to exit; kills it and fails otherwise.
+fn exits_within(daemon: &mut Child, limit: Duration) -> std::process::ExitStatus {
+    let started = Instant::now();
+    while started.elapsed() < limit {
+        if let Some(exit) = daemon.try_wait().expect("poll") {
+            return exit;
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    let _ = daemon.kill();
+    let _ = daemon.wait();
+    panic!("the daemon did not exit within {limit:?}");
+}
+
+fn scan(relay: SocketAddr) -> Result<f64, String> {
+    let mut client =
+        Client::connect(&relay.to_string(), Duration::from_secs(10)).map_err(|e| e.to_string())?;
+    client
+        .scan("a@example.net", &["b@example.org".to_string()], &message())
+        .map(|v| v.margin)
+        .map_err(|e| e.to_string())
+}
+
+/// Item 5: model and config reads refuse FIFOs at start-up, and a reload in progress never
+/// holds up shutdown.
+mod daemon_files {
+    use super::*;
+
+    #[test]
+    fn serve_with_the_model_on_a_fifo_fails_fast_naming_the_path() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let fifo = dir.path().join("model.fifo");
+        mkfifo(&fifo);
+        let (config, _, _) = serve_config(dir.path(), &fifo);
+        let mut cmd = tamis();
+        cmd.args(["serve", "--config", s(&config)]);
+        let out = run_within(cmd, Duration::from_secs(15));
+        let err = stderr(&out);
+        assert_eq!(out.status.code(), Some(2), "{err}");
+        assert!(
+            err.contains(s(&fifo)) && err.contains("not a regular file"),
+            "{err}"
+        );
+    }
+
+    #[test]
+    fn sighup_with_the_model_on_a_fifo_then_sigterm_exits_within_the_grace_period() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let model = dir.path().join("model.tamis");
+        tamis::model::file::save_model(built_in(), &model).expect("save");
+        let (config, relay, _) = serve_config(dir.path(), &model);
+        let mut daemon = spawn_serve("", &config);
+        wait_ready(&mut daemon, relay);
+        let before = scan(relay).expect("verdict before the reload");
+        std::fs::remove_file(&model).expect("remove");
+        mkfifo(&model);
+        signal(&daemon, "HUP");
+        std::thread::sleep(Duration::from_millis(300));
+        // The old model still serves while (or after) the reload fails.
+        assert_eq!(scan(relay), Ok(before));
+        signal(&daemon, "TERM");
+        // grace_period is 3 s; allow start-up slack on a loaded machine.
+        let exit = exits_within(&mut daemon, Duration::from_secs(8));
+        assert!(exit.success(), "{exit:?}");
+        let mut err = String::new();
+        daemon
+            .stderr
+            .take()
+            .expect("stderr")
+            .read_to_string(&mut err)
+            .expect("read stderr");
+        assert!(err.contains("not a regular file"), "{err}");
+    }
+}
+
 /// Item 11: `tamis check` and `tamis train` report each failure once, clearly.
 mod cli_errors {
     use super::*;
