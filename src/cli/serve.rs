@@ -52,10 +52,38 @@ fn init_logging(config: &Config) {
     };
 }
 
+/// Raises the soft limit on open descriptors to the hard limit, so the configured connection
+/// limits, not whatever limit the starting shell had, bound the daemon. A failure is logged
+/// and start-up goes on with the limit it has.
+fn raise_descriptor_limit() {
+    use rustix::process::{Resource, Rlimit, getrlimit, setrlimit};
+    let limit = getrlimit(Resource::Nofile);
+    let (Some(soft), Some(hard)) = (limit.current, limit.maximum) else {
+        // Unlimited (`None`) on either side leaves nothing to raise.
+        return;
+    };
+    if soft >= hard {
+        return;
+    }
+    let raised = Rlimit {
+        current: Some(hard),
+        maximum: Some(hard),
+    };
+    match setrlimit(Resource::Nofile, raised) {
+        Ok(()) => tracing::debug!(from = soft, to = hard, "raised the open-file limit"),
+        Err(e) => tracing::warn!(
+            limit = soft,
+            error = %e,
+            "could not raise the open-file limit to the hard limit; connections may fail under load"
+        ),
+    }
+}
+
 /// Runs `tamis serve` until SIGTERM or SIGINT.
 pub fn run(args: &ServeArgs) -> anyhow::Result<u8> {
     let config = load_config(&args.config)?;
     init_logging(&config);
+    raise_descriptor_limit();
     if args.config.is_none() {
         eprintln!(
             "tamis: no --config given: running on built-in defaults (loopback only, tag-only policy)"

@@ -1,18 +1,27 @@
 //! A minimal HTTP/1.1 responder for the metrics listener: `GET /metrics`, `/healthz`,
 //! `/readyz`. Nothing else is served; requests are read with a size cap and a timeout, so a
 //! slow or hostile scraper costs one small task.
+//!
+//! At most [`MAX_STATUS_CONNECTIONS`] connections are served at once; one over the cap is
+//! closed as soon as it is accepted. A flood of connections to this port therefore holds a
+//! bounded number of descriptors and cannot starve the relay listeners, which share the
+//! process's descriptor limit.
 
 use std::sync::Arc;
 use std::time::Duration;
 
 use tokio::io::{AsyncReadExt, AsyncWriteExt};
 use tokio::net::TcpListener;
+use tokio::sync::Semaphore;
 use tokio_util::sync::CancellationToken;
 
 /// Largest request head read.
 const MAX_REQUEST: usize = 8 * 1024;
 /// Time allowed for a request head to arrive.
 const REQUEST_TIMEOUT: Duration = Duration::from_secs(5);
+/// Most status connections served at once. A scraper uses one at a time; the rest is room
+/// for health checks and people with curl.
+pub const MAX_STATUS_CONNECTIONS: usize = 64;
 
 /// What the endpoints report.
 pub trait Status: Send + Sync + 'static {
@@ -28,6 +37,7 @@ pub async fn serve_status(
     status: Arc<dyn Status>,
     shutdown: CancellationToken,
 ) {
+    let permits = Arc::new(Semaphore::new(MAX_STATUS_CONNECTIONS));
     loop {
         let accepted = tokio::select! {
             _ = shutdown.cancelled() => return,
@@ -38,9 +48,15 @@ pub async fn serve_status(
             tokio::time::sleep(Duration::from_millis(100)).await;
             continue;
         };
+        let Ok(permit) = Arc::clone(&permits).try_acquire_owned() else {
+            // Over the cap: closed at once, so the descriptor is free again.
+            drop(stream);
+            continue;
+        };
         let status = Arc::clone(&status);
         tokio::spawn(async move {
             let _ = tokio::time::timeout(REQUEST_TIMEOUT, answer(stream, status)).await;
+            drop(permit);
         });
     }
 }

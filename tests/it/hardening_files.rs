@@ -565,6 +565,94 @@ mod daemon_files {
     }
 }
 
+/// The daemon of `tests/it/daemon.rs`, in process on loopback.
+async fn in_process_daemon() -> tamis::server::listen::Running {
+    let mut config = Config::default();
+    config.listen.tcp = Some("127.0.0.1:0".parse().expect("addr"));
+    config.metrics = Some("127.0.0.1:0".parse().expect("addr"));
+    let decisions = Decisions {
+        policy: config.policy.clone(),
+        headers: config.headers.clone(),
+        on_failure: config.on_failure,
+    };
+    let engine = Engine::new(built_in().clone(), "test model", decisions).expect("engine");
+    let metrics = Arc::new(Metrics::new(config.policy.domains().keys()).expect("metrics"));
+    tamis::server::listen::start(&config, SharedEngine::new(engine), metrics)
+        .await
+        .expect("binds on loopback")
+}
+
+/// Item 7: the metrics listener cannot use up the descriptors the relay listener needs.
+mod status_port {
+    use super::*;
+
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn connections_over_the_status_cap_are_closed_at_once_and_relay_answers() {
+        let running = in_process_daemon().await;
+        let status = running.status.expect("status address");
+        let relay = running.tcp.expect("relay address");
+        let cap = tamis::server::http::MAX_STATUS_CONNECTIONS;
+        let extra = 40;
+        let closed = tokio::task::spawn_blocking(move || {
+            // Silent clients: each would hold a task for the request timeout (5 s).
+            let held: Vec<TcpStream> = (0..cap + extra)
+                .map(|_| TcpStream::connect(status).expect("connect"))
+                .collect();
+            std::thread::sleep(Duration::from_millis(1000));
+            let started = Instant::now();
+            let closed = held
+                .iter()
+                .filter(|s| {
+                    s.set_nonblocking(true).expect("non-blocking");
+                    matches!((&mut &**s).read(&mut [0u8; 1]), Ok(0))
+                })
+                .count();
+            (closed, started.elapsed(), scan(relay), held.len())
+        })
+        .await
+        .expect("task");
+        let (closed, took, verdict, held) = closed;
+        assert!(closed >= extra, "{closed} of {held} closed in {took:?}");
+        assert!(verdict.is_ok(), "{verdict:?}");
+        running.stop().await;
+    }
+
+    fn soft_and_hard_open_files(pid: u32) -> (String, String) {
+        let limits = std::fs::read_to_string(format!("/proc/{pid}/limits")).expect("limits");
+        let line = limits
+            .lines()
+            .find(|l| l.starts_with("Max open files"))
+            .expect("open files line");
+        let mut words = line.split_whitespace().skip(3);
+        (
+            words.next().expect("soft").to_string(),
+            words.next().expect("hard").to_string(),
+        )
+    }
+
+    #[test]
+    fn serve_raises_its_descriptor_limit_and_a_status_flood_leaves_relay_answering() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let model = dir.path().join("model.tamis");
+        tamis::model::file::save_model(built_in(), &model).expect("save");
+        let (config, relay, status) = serve_config(dir.path(), &model);
+        let mut daemon = spawn_serve("ulimit -S -n 128 &&", &config);
+        wait_ready(&mut daemon, relay);
+        let (soft, hard) = soft_and_hard_open_files(daemon.id());
+        // More silent clients than the daemon's soft limit at start.
+        let flood: Vec<TcpStream> = (0..300)
+            .filter_map(|_| TcpStream::connect(status).ok())
+            .collect();
+        std::thread::sleep(Duration::from_millis(300));
+        let verdict = scan(relay);
+        drop(flood);
+        signal(&daemon, "TERM");
+        let _ = exits_within(&mut daemon, Duration::from_secs(10));
+        assert_eq!(soft, hard, "soft limit raised to the hard limit");
+        assert!(verdict.is_ok(), "{verdict:?}");
+    }
+}
+
 /// Item 11: `tamis check` and `tamis train` report each failure once, clearly.
 mod cli_errors {
     use super::*;
