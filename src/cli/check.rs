@@ -1,16 +1,26 @@
 //! `tamis check`: a protocol client that sends messages to a running daemon and prints the
 //! verdicts.
+//!
+//! Failures are reported once each: a daemon that does not answer within `--timeout` is an
+//! operational failure (exit 1) named with its address; when the conversation breaks
+//! mid-run, the cause is printed once and every file not yet answered gets its own "not
+//! checked" line, so a script can tell which verdicts it is missing.
 
 use std::collections::BTreeMap;
-use std::io::Write;
-use std::path::PathBuf;
+use std::io::{Read, Write};
+use std::path::{Path, PathBuf};
 use std::time::Duration;
 
 use serde::Serialize;
 
 use super::input::{BadInput, Format};
-use super::{EXIT_BAD_INPUT, EXIT_OK};
-use crate::proto::client::Client;
+use super::{EXIT_BAD_INPUT, EXIT_FAILURE, EXIT_OK};
+use crate::proto::client::{Client, ClientError};
+
+/// Largest message file sent. The daemon scans at most its `limits.max_message_bytes`
+/// (10 MiB by default) and answers for the rest unscanned; more than this is never useful
+/// from a test tool and would only fill memory.
+pub const MAX_FILE_BYTES: u64 = 256 << 20;
 
 /// The daemon's address on built-in defaults.
 pub const DEFAULT_ADDRESS: &str = "127.0.0.1:7357";
@@ -30,6 +40,9 @@ pub struct CheckArgs {
     /// Output format: `text`, or `json` (one object per line).
     #[arg(long, value_enum, default_value_t = Format::Text)]
     format: Format,
+    /// Seconds to wait for each answer from the daemon before giving up.
+    #[arg(long, value_name = "SECONDS", default_value_t = 30, value_parser = clap::value_parser!(u64).range(1..=3600))]
+    timeout: u64,
     /// Message files.
     #[arg(required = true, value_name = "FILE")]
     files: Vec<PathBuf>,
@@ -46,27 +59,82 @@ struct Line<'a> {
     reasons: &'a [String],
 }
 
+/// Whether a client error is a read that timed out (`SO_RCVTIMEO` gives `EAGAIN`).
+fn timed_out(e: &ClientError) -> bool {
+    matches!(e, ClientError::Io(io) if matches!(
+        io.kind(),
+        std::io::ErrorKind::WouldBlock | std::io::ErrorKind::TimedOut
+    ))
+}
+
+/// The failure of a conversation, in words, naming the daemon once.
+fn describe(e: &ClientError, addr: &str, timeout: u64) -> String {
+    match e {
+        e if timed_out(e) => format!("the daemon at {addr} did not answer within {timeout} s"),
+        ClientError::Io(io) => format!("lost the connection to the daemon at {addr}: {io}"),
+        other => format!("the daemon at {addr} ended the conversation: {other}"),
+    }
+}
+
+/// Reads a message file, at most [`MAX_FILE_BYTES`].
+fn read_message(path: &Path) -> Result<Vec<u8>, String> {
+    let mut raw = Vec::new();
+    std::fs::File::open(path)
+        .and_then(|f| f.take(MAX_FILE_BYTES + 1).read_to_end(&mut raw))
+        .map_err(|e| format!("cannot read: {e}"))?;
+    if raw.len() as u64 > MAX_FILE_BYTES {
+        return Err(format!(
+            "larger than {MAX_FILE_BYTES} bytes; not sent (the daemon scans at most its limits.max_message_bytes)"
+        ));
+    }
+    Ok(raw)
+}
+
 /// Runs `tamis check`.
 pub fn run(args: &CheckArgs) -> anyhow::Result<u8> {
-    let mut client = Client::connect(&args.connect, Duration::from_secs(30)).map_err(|e| {
-        BadInput(format!(
-            "cannot talk to the daemon at {}: {e}",
-            args.connect
-        ))
-    })?;
+    let timeout = Duration::from_secs(args.timeout);
+    let mut client = match Client::connect(&args.connect, timeout) {
+        Ok(client) => client,
+        Err(e) if timed_out(&e) => {
+            anyhow::bail!("{}", describe(&e, &args.connect, args.timeout))
+        }
+        Err(e) => {
+            return Err(BadInput(format!(
+                "cannot talk to the daemon at {}: {e}",
+                args.connect
+            ))
+            .into());
+        }
+    };
     let stdout = std::io::stdout();
     let mut out = stdout.lock();
     let mut code = EXIT_OK;
-    for path in &args.files {
-        let raw = match std::fs::read(path) {
+    for (n, path) in args.files.iter().enumerate() {
+        let raw = match read_message(path) {
             Ok(raw) => raw,
             Err(e) => {
-                eprintln!("tamis: {}: cannot read: {e}", path.display());
+                eprintln!("tamis: {}: {e}", path.display());
                 code = EXIT_BAD_INPUT;
                 continue;
             }
         };
-        let verdict = client.scan(&args.from, &args.rcpt, &raw)?;
+        let verdict = match client.scan(&args.from, &args.rcpt, &raw) {
+            Ok(verdict) => verdict,
+            Err(e) => {
+                // The conversation is over: say why once, then account for every file
+                // that has no verdict.
+                out.flush()?;
+                eprintln!(
+                    "tamis: {} while checking {}",
+                    describe(&e, &args.connect, args.timeout),
+                    path.display()
+                );
+                for rest in args.files.iter().skip(n) {
+                    eprintln!("tamis: {}: not checked", rest.display());
+                }
+                return Ok(EXIT_FAILURE);
+            }
+        };
         let line = Line {
             file: path.display().to_string(),
             id: &verdict.verdict_id,

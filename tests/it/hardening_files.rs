@@ -653,9 +653,104 @@ mod status_port {
     }
 }
 
+/// A stand-in daemon: shakes hands (or not), then hangs or drops the connection.
+fn fake_daemon(handshake: bool) -> SocketAddr {
+    let listener = TcpListener::bind("127.0.0.1:0").expect("bind");
+    let addr = listener.local_addr().expect("addr");
+    std::thread::spawn(move || {
+        let Ok((mut stream, _)) = listener.accept() else {
+            return;
+        };
+        if !handshake {
+            std::thread::sleep(Duration::from_secs(10));
+            return;
+        }
+        let mut buf = BytesMut::new();
+        let mut chunk = [0u8; 4096];
+        loop {
+            if let Ok(Some(_)) = parse_frame(&buf, 1 << 20) {
+                break;
+            }
+            match stream.read(&mut chunk) {
+                Ok(0) | Err(_) => return,
+                Ok(n) => buf.extend_from_slice(&chunk[..n]),
+            }
+        }
+        let mut out = BytesMut::new();
+        encode_frame(
+            &Frame::Welcome {
+                version: 1,
+                max_frame: 1 << 20,
+                max_message: 1 << 20,
+                server: "stand-in".into(),
+            },
+            &mut out,
+        )
+        .expect("encode");
+        let _ = stream.write_all(&out);
+        // Dies on the first message.
+        let _ = stream.read(&mut chunk);
+    });
+    addr
+}
+
 /// Item 11: `tamis check` and `tamis train` report each failure once, clearly.
 mod cli_errors {
     use super::*;
+
+    #[test]
+    fn check_reports_a_silent_daemon_as_an_operational_failure() {
+        let addr = fake_daemon(false).to_string();
+        let out = run(&[
+            "check",
+            "--connect",
+            &addr,
+            "--timeout",
+            "1",
+            "--rcpt",
+            "a@example.org",
+            s(&kit().labels),
+        ]);
+        let err = stderr(&out);
+        assert_eq!(out.status.code(), Some(1), "{err}");
+        assert!(
+            err.contains(&format!("the daemon at {addr} did not answer within 1 s")),
+            "{err}"
+        );
+        assert!(!err.contains("os error"), "{err}");
+    }
+
+    #[test]
+    fn check_when_the_daemon_dies_prints_the_error_once_and_a_line_per_file() {
+        let addr = fake_daemon(true).to_string();
+        let dir = tempfile::tempdir().expect("temp dir");
+        let files: Vec<PathBuf> = (0..3)
+            .map(|i| {
+                let path = dir.path().join(format!("m{i}.eml"));
+                std::fs::write(&path, message()).expect("write");
+                path
+            })
+            .collect();
+        let mut args = vec![
+            "check",
+            "--connect",
+            &addr,
+            "--timeout",
+            "5",
+            "--rcpt",
+            "a@example.org",
+        ];
+        args.extend(files.iter().map(|f| s(f)));
+        let out = run(&args);
+        let err = stderr(&out);
+        assert_eq!(out.status.code(), Some(1), "{err}");
+        let lost = format!("lost the connection to the daemon at {addr}");
+        assert_eq!(err.matches(&lost).count(), 1, "{err}");
+        for file in &files {
+            let line = format!("{}: not checked", file.display());
+            assert_eq!(err.matches(&line).count(), 1, "{err}");
+        }
+    }
 
     #[test]
     fn train_out_a_folder_prints_its_error_once_before_training() {
