@@ -15,6 +15,8 @@
 //!
 //! 5. [`proto`] — the relay protocol's frames, codec and state machine (`proto/PROTOCOL.md`).
 //!
+//! [`logsafe`] escapes every value that comes from a peer before it reaches a log line.
+//!
 //! [`demo`] generates the invented demonstration corpus used by examples and benchmarks.
 #![forbid(unsafe_code)]
 
@@ -24,6 +26,7 @@ pub mod config;
 pub mod demo;
 pub mod features;
 pub mod label;
+pub mod logsafe;
 pub mod mail;
 pub mod metrics;
 pub mod model;

@@ -209,7 +209,7 @@ fn dispatch<S>(
     match Arc::clone(permits).try_acquire_owned() {
         Ok(permit) => {
             let ctx = Arc::clone(ctx);
-            let span = tracing::info_span!("connection", peer = %peer);
+            let span = tracing::info_span!("connection", peer = %crate::logsafe::safe(&peer));
             tracker.spawn(
                 async move {
                     serve_connection(stream, peer, ctx).await;

@@ -15,6 +15,7 @@ use tokio_util::sync::CancellationToken;
 
 use super::engine::{Engine, SharedEngine};
 use crate::config::Limits as ConfigLimits;
+use crate::logsafe::safe;
 use crate::metrics::Metrics;
 use crate::policy::{self, Action, HeaderEdit, UnscannedReason};
 use crate::proto::{
@@ -82,7 +83,7 @@ where
         ctx,
     };
     if let Err(e) = session.run().await {
-        tracing::debug!(peer = %peer, error = %e, "connection ended with an I/O error");
+        tracing::debug!(peer = %safe(&peer), error = %e, "connection ended with an I/O error");
     }
 }
 
@@ -177,7 +178,7 @@ where
 
     async fn fault(&mut self, code: FaultCode, fatal: bool, text: &str) -> std::io::Result<()> {
         self.ctx.metrics.protocol_error(code.name());
-        tracing::debug!(code = code.name(), fatal, text, "fault");
+        tracing::debug!(code = code.name(), fatal, text = %safe(text), "fault");
         let mut text = text.to_string();
         // A fault must fit the smallest frame a client may announce.
         text.truncate(1024);
@@ -335,7 +336,7 @@ where
                 };
                 let reason = UnscannedReason::ScanFailed;
                 self.ctx.metrics.unscanned(reason);
-                tracing::warn!(verdict_id = %verdict_id, error = %why, "message not scanned");
+                tracing::warn!(verdict_id = %verdict_id, error = %safe(&why), "message not scanned");
                 let decisions = d.policy.unscanned(&recipients, d.on_failure);
                 let edits = d.policy.unscanned_edits(d.on_failure, reason);
                 (
@@ -380,7 +381,7 @@ fn log_verdict(
         .unwrap_or_default();
     tracing::info!(
         verdict_id = %id,
-        domain = %domain,
+        domain = %safe(&domain),
         action = strongest.as_str(),
         margin = margin,
         duration_ms = seconds * 1e3,

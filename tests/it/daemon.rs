@@ -934,3 +934,155 @@ async fn a_message_that_cannot_be_scored_follows_the_failure_mode() {
         assert!(running.stop().await);
     }
 }
+
+/// Log events captured in memory: one entry per event, as the subscriber wrote it.
+#[derive(Clone, Default)]
+struct CapturedLog(Arc<std::sync::Mutex<Vec<Vec<u8>>>>);
+
+/// Collects one event's bytes and files them when the subscriber drops it.
+struct EventWriter {
+    log: CapturedLog,
+    bytes: Vec<u8>,
+}
+
+impl Write for EventWriter {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        self.bytes.extend_from_slice(buf);
+        Ok(buf.len())
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        Ok(())
+    }
+}
+
+impl Drop for EventWriter {
+    fn drop(&mut self) {
+        if let Ok(mut events) = self.log.0.lock() {
+            events.push(std::mem::take(&mut self.bytes));
+        }
+    }
+}
+
+impl<'a> tracing_subscriber::fmt::MakeWriter<'a> for CapturedLog {
+    type Writer = EventWriter;
+
+    fn make_writer(&'a self) -> EventWriter {
+        EventWriter {
+            log: self.clone(),
+            bytes: Vec::new(),
+        }
+    }
+}
+
+impl CapturedLog {
+    fn events(&self) -> Vec<String> {
+        self.0
+            .lock()
+            .map(|e| {
+                e.iter()
+                    .map(|b| String::from_utf8_lossy(b).into_owned())
+                    .collect()
+            })
+            .unwrap_or_default()
+    }
+}
+
+/// A recipient carrying a newline, a forged log line and terminal escapes (ESC [2J clears
+/// the screen) must not produce a second line in either log format. The daemon runs on
+/// this test's single thread, so the scoped subscriber sees every event of its tasks.
+#[tokio::test]
+async fn a_recipient_cannot_forge_a_log_line() {
+    use tracing_subscriber::layer::SubscriberExt;
+    let human = CapturedLog::default();
+    let json = CapturedLog::default();
+    let subscriber = tracing_subscriber::registry()
+        .with(tracing_subscriber::filter::LevelFilter::DEBUG)
+        .with(
+            tracing_subscriber::fmt::layer()
+                .with_ansi(false)
+                .with_writer(human.clone()),
+        )
+        .with(
+            tracing_subscriber::fmt::layer()
+                .json()
+                .with_writer(json.clone()),
+        );
+    let _guard = tracing::subscriber::set_default(subscriber);
+    let (running, _) = daemon(loopback()).await;
+    let addr = running.tcp.expect("tcp");
+    let forged = "x@example.org\n2030-01-01T00:00:00.000000Z  INFO tamis::cli::serve: reloaded configuration and model model=\"evil\"\x1b[2J\x1b[H";
+    let verdict = tokio::task::spawn_blocking(move || {
+        let mut raw = Raw::hello(addr);
+        raw.send(&Frame::Sender {
+            address: "a@example.net".into(),
+        });
+        raw.send(&Frame::Recipient {
+            address: forged.into(),
+        });
+        let whole = message(4);
+        let (fields, body) = tamis::proto::client::split_message(&whole);
+        for (name, value) in fields {
+            raw.send(&Frame::Field { name, value });
+        }
+        raw.send(&Frame::Chunk {
+            data: body.to_vec(),
+        });
+        raw.send(&Frame::Seal);
+        loop {
+            match raw.next() {
+                Some(Frame::Verdict(v)) => return v,
+                Some(_) => continue,
+                None => panic!("closed without a verdict"),
+            }
+        }
+    })
+    .await
+    .expect("task");
+    assert_eq!(verdict.recipients.len(), 1, "the recipient keeps its place");
+    assert!(running.stop().await);
+    drop(_guard);
+
+    let human = human.events();
+    assert!(human.iter().any(|e| e.contains(" verdict")), "{human:#?}");
+    // The value is logged (escaped), so the checks below are not vacuous.
+    assert!(
+        human
+            .iter()
+            .any(|e| e.contains("example.org\\n2030-01-01") && e.contains("\\u{1b}[2")),
+        "{human:#?}"
+    );
+    for event in &human {
+        // One event, one line: the only line break is the one that ends it.
+        let body = event.strip_suffix('\n').unwrap_or(event);
+        assert!(
+            !body.chars().any(|c| c.is_control()),
+            "a control character reached the human log: {event:?}"
+        );
+    }
+    let json = json.events();
+    assert!(!json.is_empty());
+    for event in &json {
+        let body = event.strip_suffix('\n').unwrap_or(event);
+        assert!(!body.contains('\n'), "{event:?}");
+        let value: serde_json::Value = serde_json::from_str(body).expect("one JSON object");
+        let mut texts = Vec::new();
+        collect_strings(&value, &mut texts);
+        for text in texts {
+            // After JSON decoding, the logged values themselves carry no control character.
+            assert!(
+                !text.chars().any(|c| c.is_control()),
+                "a control character in a logged value: {text:?}"
+            );
+        }
+    }
+}
+
+fn collect_strings(value: &serde_json::Value, out: &mut Vec<String>) {
+    match value {
+        serde_json::Value::String(s) => out.push(s.clone()),
+        serde_json::Value::Array(items) => items.iter().for_each(|v| collect_strings(v, out)),
+        serde_json::Value::Object(map) => map.values().for_each(|v| collect_strings(v, out)),
+        _ => {}
+    }
+}
