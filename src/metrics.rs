@@ -44,7 +44,7 @@ pub const OTHER: &str = "other";
 
 /// The `kind` values of `tamis_protocol_errors_total`: the `FAULT` names of
 /// `proto/PROTOCOL.md` §5, lower-cased.
-pub const PROTOCOL_ERROR_KINDS: [&str; 11] = [
+pub const PROTOCOL_ERROR_KINDS: [&str; 13] = [
     "malformed",
     "unknown_kind",
     "out_of_order",
@@ -56,6 +56,8 @@ pub const PROTOCOL_ERROR_KINDS: [&str; 11] = [
     "version",
     "busy",
     "shutting_down",
+    "bad_address",
+    "verdict_too_large",
 ];
 
 /// Bucket bounds of `tamis_margin`: -3 to 3 in steps of 0.25, which resolves the usual

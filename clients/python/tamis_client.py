@@ -107,13 +107,16 @@ IDLE = 8
 VERSION = 9
 BUSY = 10
 SHUTTING_DOWN = 11
+BAD_ADDRESS = 12
+VERDICT_TOO_LARGE = 13
 
 FAULT_NAMES = {
     MALFORMED: "MALFORMED", UNKNOWN_KIND: "UNKNOWN_KIND",
     OUT_OF_ORDER: "OUT_OF_ORDER", FRAME_TOO_LARGE: "FRAME_TOO_LARGE",
     MESSAGE_TOO_LARGE: "MESSAGE_TOO_LARGE", TOO_MANY: "TOO_MANY",
     FIELD_TOO_LARGE: "FIELD_TOO_LARGE", IDLE: "IDLE", VERSION: "VERSION",
-    BUSY: "BUSY", SHUTTING_DOWN: "SHUTTING_DOWN",
+    BUSY: "BUSY", SHUTTING_DOWN: "SHUTTING_DOWN", BAD_ADDRESS: "BAD_ADDRESS",
+    VERDICT_TOO_LARGE: "VERDICT_TOO_LARGE",
 }
 
 # Actions and edit ops (§4)
@@ -495,7 +498,10 @@ class Verdict:
     verdict_id: str
     margin: float                       # NaN when not scored
     probability: float                  # NaN when uncalibrated / not scored
-    actions: dict[str, str]             # recipient -> accept|tag|quarantine|defer
+    #: recipient -> accept|tag|quarantine|defer.  After Client.seal() the keys
+    #: are the recipients as we sent them, matched by position (§4: listed in
+    #: RECIPIENT order; a refused address is listed empty).
+    actions: dict[str, str]
     edits: list[Edit] = dc_field(default_factory=list)
     reasons: list[str] = dc_field(default_factory=list)
     #: (address, action name) in RECIPIENT order, duplicates kept.
@@ -505,8 +511,9 @@ class Verdict:
     #: True when the server sent ENOUGH (or MESSAGE_TOO_LARGE) and we skipped
     #: the remaining CHUNKs.
     body_cut_short: bool = False
-    #: recipients we sent that the VERDICT does not list (e.g. ignored after
-    #: TOO_MANY): the caller must decide for them (see README, questions).
+    #: recipients we sent that the VERDICT does not list (ignored after
+    #: TOO_MANY, always the last ones sent): §4 says to send the message again
+    #: for them, or answer them with a temporary failure.
     unlisted: list[str] = dc_field(default_factory=list)
 
     @property
@@ -879,8 +886,14 @@ class Client:
         v = Verdict.from_frame(fr)
         v.faults = list(self._faults)
         v.body_cut_short = self._enough
-        listed = {a for a, _ in v.recipients}
-        v.unlisted = [r for r in getattr(self, "_recipients", []) if r not in listed]
+        # §4: the VERDICT lists the kept recipients in RECIPIENT order, a prefix
+        # of those sent; a refused address (BAD_ADDRESS) is listed empty.  So
+        # recipients are matched by position, not by address.
+        sent = list(getattr(self, "_recipients", []))
+        v.actions = {}
+        for i, (address, action) in enumerate(v.recipients):
+            v.actions[sent[i] if i < len(sent) else address] = action
+        v.unlisted = sent[len(v.recipients):]
         self._end_message()
         return v
 

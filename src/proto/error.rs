@@ -36,11 +36,15 @@ pub enum FaultCode {
     Busy = 10,
     /// The server is stopping and takes no new message.
     ShuttingDown = 11,
+    /// A `SENDER` or `RECIPIENT` that is not an RFC 5321 address (not fatal).
+    BadAddress = 12,
+    /// The `VERDICT` could not be made to fit the client's `max_frame`.
+    VerdictTooLarge = 13,
 }
 
 impl FaultCode {
     /// Every code, in wire order; handy for exhaustive tests and strategies.
-    pub const ALL: [FaultCode; 11] = [
+    pub const ALL: [FaultCode; 13] = [
         FaultCode::Malformed,
         FaultCode::UnknownKind,
         FaultCode::OutOfOrder,
@@ -52,6 +56,8 @@ impl FaultCode {
         FaultCode::Version,
         FaultCode::Busy,
         FaultCode::ShuttingDown,
+        FaultCode::BadAddress,
+        FaultCode::VerdictTooLarge,
     ];
 
     /// The wire value.
@@ -68,7 +74,10 @@ impl FaultCode {
     pub fn is_fatal(self) -> bool {
         !matches!(
             self,
-            FaultCode::MessageTooLarge | FaultCode::TooMany | FaultCode::FieldTooLarge
+            FaultCode::MessageTooLarge
+                | FaultCode::TooMany
+                | FaultCode::FieldTooLarge
+                | FaultCode::BadAddress
         )
     }
 
@@ -86,6 +95,8 @@ impl FaultCode {
             FaultCode::Version => "VERSION",
             FaultCode::Busy => "BUSY",
             FaultCode::ShuttingDown => "SHUTTING_DOWN",
+            FaultCode::BadAddress => "BAD_ADDRESS",
+            FaultCode::VerdictTooLarge => "VERDICT_TOO_LARGE",
         }
     }
 }

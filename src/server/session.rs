@@ -18,6 +18,7 @@ use crate::config::Limits as ConfigLimits;
 use crate::logsafe::safe;
 use crate::metrics::Metrics;
 use crate::policy::{self, Action, HeaderEdit, UnscannedReason};
+use crate::proto::address::{self, Role};
 use crate::proto::{
     Edit, EditOp, FaultCode, Frame, Keep, Limits, MIN_MAX_FRAME, RecipientAction, SessionState,
     Verdict, encode_frame_within, parse_frame,
@@ -196,22 +197,24 @@ where
                 return Ok(Flow::Close);
             }
         };
+        if matches!(frame, Frame::Sender { .. }) && self.ctx.shutdown.is_cancelled() {
+            self.fault(
+                FaultCode::ShuttingDown,
+                true,
+                "the daemon is stopping; retry later",
+            )
+            .await?;
+            return Ok(Flow::Close);
+        }
         for notice in &accepted.notices {
-            let text = match notice {
-                FaultCode::MessageTooLarge => {
-                    "message larger than the scan limit; the rest is not read"
-                }
-                FaultCode::TooMany => "too many recipients or fields; the extra ones are ignored",
-                FaultCode::FieldTooLarge => "header field value cut at the limit",
-                _ => "notice",
-            };
-            self.fault(*notice, false, text).await?;
+            let text = self.notice_text(*notice, &frame);
+            self.fault(*notice, false, &text).await?;
         }
         let keep = |data: &[u8]| -> usize {
             match accepted.keep {
                 Keep::All => data.len(),
                 Keep::Prefix(n) => n.min(data.len()),
-                Keep::Nothing => 0,
+                Keep::Nothing | Keep::Blank => 0,
             }
         };
         match frame {
@@ -222,15 +225,6 @@ where
             }
             Frame::Peer { .. } => {}
             Frame::Sender { .. } => {
-                if self.ctx.shutdown.is_cancelled() {
-                    self.fault(
-                        FaultCode::ShuttingDown,
-                        true,
-                        "the daemon is stopping; retry later",
-                    )
-                    .await?;
-                    return Ok(Flow::Close);
-                }
                 let engine = self.ctx.engine.current();
                 let cap = (engine.model().spec().limits.max_raw_bytes as u64)
                     .min(self.ctx.limits.max_message_bytes) as usize;
@@ -240,9 +234,13 @@ where
                     ..Message::default()
                 };
             }
-            Frame::Recipient { address } if !matches!(accepted.keep, Keep::Nothing) => {
-                self.message.recipients.push(address);
-            }
+            Frame::Recipient { address } => match accepted.keep {
+                Keep::Nothing => {}
+                // A refused address keeps its place but is neither echoed nor trusted to
+                // pick a policy section: the empty address falls under the default one.
+                Keep::Blank => self.message.recipients.push(String::new()),
+                Keep::All | Keep::Prefix(_) => self.message.recipients.push(address),
+            },
             Frame::Field { name, value } => {
                 let n = keep(&value);
                 if n > 0 || matches!(accepted.keep, Keep::All) {
@@ -273,8 +271,25 @@ where
                 if !self.message.body_started {
                     self.message.raw.extend_from_slice(b"\r\n");
                 }
-                let verdict = self.decide().await;
+                let mut verdict = self.decide().await;
                 self.message = Message::default();
+                let limit = self.state.peer_max_frame().unwrap_or(MIN_MAX_FRAME);
+                if let Err(length) = verdict.fit_within(limit) {
+                    // The recipient room of the state machine makes this unreachable unless
+                    // the edits outgrew their reserve; the relay must still hear of it.
+                    tracing::error!(
+                        verdict_id = %verdict.verdict_id,
+                        length,
+                        limit,
+                        "a verdict does not fit the client's frame limit"
+                    );
+                    let text = format!(
+                        "verdict {} needs {length} bytes, above your max_frame of {limit}; the message is not decided",
+                        verdict.verdict_id
+                    );
+                    self.fault(FaultCode::VerdictTooLarge, true, &text).await?;
+                    return Ok(Flow::Close);
+                }
                 self.send(&Frame::Verdict(verdict)).await?;
             }
             Frame::Drop => self.message = Message::default(),
@@ -287,6 +302,39 @@ where
             _ => {}
         }
         Ok(Flow::Continue)
+    }
+
+    /// The text of a non-fatal `FAULT` about `frame`.
+    fn notice_text(&self, code: FaultCode, frame: &Frame) -> String {
+        match (code, frame) {
+            (FaultCode::MessageTooLarge, _) => {
+                "message larger than the scan limit; the rest is not read".to_string()
+            }
+            (FaultCode::TooMany, _) => {
+                "too many recipients or fields; the extra ones are ignored".to_string()
+            }
+            (FaultCode::FieldTooLarge, _) => "header field value cut at the limit".to_string(),
+            (FaultCode::BadAddress, Frame::Sender { address }) => {
+                let why = address::check(address, Role::Sender)
+                    .err()
+                    .map(|e| e.to_string())
+                    .unwrap_or_default();
+                tracing::debug!(address = %safe(address), reason = %why, "SENDER refused");
+                format!("SENDER refused: {why}; the message goes on")
+            }
+            (FaultCode::BadAddress, Frame::Recipient { address }) => {
+                let position = self.message.recipients.len() + 1;
+                let why = address::check(address, Role::Recipient)
+                    .err()
+                    .map(|e| e.to_string())
+                    .unwrap_or_default();
+                tracing::debug!(position, address = %safe(address), reason = %why, "RECIPIENT refused");
+                format!(
+                    "RECIPIENT {position} refused: {why}; it is listed with an empty address and decided under the default thresholds"
+                )
+            }
+            (code, _) => code.name().to_string(),
+        }
     }
 
     /// Bytes the message may still grow by.

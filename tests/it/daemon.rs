@@ -100,9 +100,14 @@ impl Raw {
 
     /// The next frame, or `None` when the server closed the connection.
     fn next(&mut self) -> Option<Frame> {
+        self.next_within(1 << 20)
+    }
+
+    /// The next frame, which must fit `max_frame` (the limit this client announced).
+    fn next_within(&mut self, max_frame: u32) -> Option<Frame> {
         loop {
             if let Some((frame, used)) =
-                parse_frame(&self.buf, 1 << 20).expect("server frames parse")
+                parse_frame(&self.buf, max_frame).expect("server frames parse within the limit")
             {
                 let _ = self.buf.split_to(used);
                 return Some(frame);
@@ -1008,6 +1013,11 @@ async fn a_recipient_cannot_forge_a_log_line() {
                 .json()
                 .with_writer(json.clone()),
         );
+    // With a single dispatcher registered, tracing-core (0.1.36, `Rebuilder::JustOne`) decides
+    // whether a callsite is enabled from the default of whichever thread reaches it first,
+    // which in a parallel test run is another test's thread with no subscriber. A second,
+    // idle dispatcher makes it ask every registered dispatcher, this test's included.
+    let _second = tracing::Dispatch::new(tracing_subscriber::registry());
     let _guard = tracing::subscriber::set_default(subscriber);
     let (running, _) = daemon(loopback()).await;
     let addr = running.tcp.expect("tcp");
@@ -1085,4 +1095,179 @@ fn collect_strings(value: &serde_json::Value, out: &mut Vec<String>) {
         serde_json::Value::Object(map) => map.values().for_each(|v| collect_strings(v, out)),
         _ => {}
     }
+}
+
+/// Every non-fatal fault and the verdict of one sealed message, read within `max_frame`.
+fn notices_and_verdict(raw: &mut Raw, max_frame: u32) -> (Vec<FaultCode>, tamis::proto::Verdict) {
+    let mut notices = Vec::new();
+    loop {
+        match raw.next_within(max_frame) {
+            Some(Frame::Fault {
+                code, fatal: false, ..
+            }) => notices.push(code),
+            Some(Frame::Verdict(v)) => return (notices, v),
+            Some(Frame::Enough) => {}
+            other => panic!("expected a verdict, got {other:?} (notices {notices:?})"),
+        }
+    }
+}
+
+/// A client announcing the smallest `max_frame` (4096).
+fn hello_small(addr: SocketAddr) -> Raw {
+    let mut raw = Raw::connect(addr);
+    raw.send(&Frame::Hello {
+        version: 1,
+        max_frame: 4096,
+        client: "small frames".into(),
+    });
+    assert!(matches!(raw.next_within(4096), Some(Frame::Welcome { .. })));
+    raw
+}
+
+/// Sends the fields and body of a demo message, then `SEAL`.
+fn send_content(raw: &mut Raw, n: usize) {
+    let whole = message(n);
+    let (fields, body) = tamis::proto::client::split_message(&whole);
+    let mut frames: Vec<Frame> = fields
+        .into_iter()
+        .map(|(name, value)| Frame::Field { name, value })
+        .collect();
+    frames.push(Frame::Chunk {
+        data: body.to_vec(),
+    });
+    frames.push(Frame::Seal);
+    raw.send_together(&frames);
+}
+
+/// Issue reproducer: one 4,011-byte recipient address with `max_frame` 4096 used to make a
+/// verdict that did not fit, and the server closed without one. RFC 5321 §4.5.3.1.3 caps a
+/// path at 256 octets.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_over_long_recipient_is_refused_but_the_message_gets_its_verdict() {
+    let (running, metrics) = daemon(loopback()).await;
+    let addr = running.tcp.expect("tcp");
+    let (notices, verdict) = tokio::task::spawn_blocking(move || {
+        let mut raw = hello_small(addr);
+        raw.send(&Frame::Sender {
+            address: "a@example.net".into(),
+        });
+        let long = format!("{}@example.org", "a".repeat(3999));
+        assert_eq!(long.len(), 4011);
+        raw.send(&Frame::Recipient { address: long });
+        raw.send(&Frame::Recipient {
+            address: "b@example.org".into(),
+        });
+        send_content(&mut raw, 5);
+        notices_and_verdict(&mut raw, 4096)
+    })
+    .await
+    .expect("task");
+    assert_eq!(notices, vec![FaultCode::BadAddress]);
+    let listed: Vec<&str> = verdict
+        .recipients
+        .iter()
+        .map(|r| r.address.as_str())
+        .collect();
+    assert_eq!(
+        listed,
+        vec!["", "b@example.org"],
+        "kept in place, not echoed"
+    );
+    assert!(verdict.margin.is_finite(), "the message was scored");
+    assert!(
+        metrics
+            .render()
+            .contains("tamis_protocol_errors_total{kind=\"bad_address\"} 1")
+    );
+    assert!(running.stop().await);
+}
+
+/// A recipient that is not an RFC 5321 address falls under the default thresholds, even when
+/// its text names a domain with a section of its own.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_malformed_recipient_is_decided_under_the_default_thresholds() {
+    let mut config = loopback();
+    config.policy = tamis::policy::Policy::new(
+        // Default: everything accepted; example.org: everything tagged.
+        tamis::policy::Thresholds::on_margin(1000.0, 2000.0).expect("thresholds"),
+        [(
+            "example.org".to_string(),
+            tamis::policy::Thresholds::on_margin(-1000.0, 1000.0).expect("thresholds"),
+        )],
+        true,
+    )
+    .expect("policy");
+    let (running, _) = daemon(config).await;
+    let addr = running.tcp.expect("tcp");
+    let (notices, verdict) = tokio::task::spawn_blocking(move || {
+        let mut raw = Raw::hello(addr);
+        raw.send(&Frame::Sender {
+            address: "not an address".into(),
+        });
+        for r in [
+            "good@example.org",
+            "bad user@example.org",
+            "other@example.org",
+        ] {
+            raw.send(&Frame::Recipient { address: r.into() });
+        }
+        send_content(&mut raw, 6);
+        notices_and_verdict(&mut raw, 1 << 20)
+    })
+    .await
+    .expect("task");
+    assert_eq!(notices, vec![FaultCode::BadAddress, FaultCode::BadAddress]);
+    let got: Vec<(&str, tamis::proto::Action)> = verdict
+        .recipients
+        .iter()
+        .map(|r| (r.address.as_str(), r.action))
+        .collect();
+    use tamis::proto::Action::{Accept, Tag};
+    assert_eq!(
+        got,
+        vec![
+            ("good@example.org", Tag),
+            ("", Accept),
+            ("other@example.org", Tag)
+        ]
+    );
+    assert!(running.stop().await);
+}
+
+/// Issue reproducer: 1,000 recipients and a client `max_frame` of 4096 used to make a verdict
+/// that did not fit, and the server closed without one. Now the recipients that fit are kept
+/// in order, the rest are refused with TOO_MANY, and the verdict fits.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_thousand_recipients_with_the_smallest_frame_limit_still_get_a_verdict() {
+    let (running, _) = daemon(loopback()).await;
+    let addr = running.tcp.expect("tcp");
+    let sent: Vec<String> = (0..1000)
+        .map(|i| format!("user{i:04}@uni-lindqvist.test"))
+        .collect();
+    let rcpts = sent.clone();
+    let (notices, verdict) = tokio::task::spawn_blocking(move || {
+        let mut raw = hello_small(addr);
+        let mut frames = vec![Frame::Sender {
+            address: "a@example.net".into(),
+        }];
+        frames.extend(
+            rcpts
+                .into_iter()
+                .map(|address| Frame::Recipient { address }),
+        );
+        raw.send_together(&frames);
+        send_content(&mut raw, 7);
+        notices_and_verdict(&mut raw, 4096)
+    })
+    .await
+    .expect("task");
+    assert_eq!(notices, vec![FaultCode::TooMany]);
+    // 27-byte addresses take 30 bytes each of the 4096 - 1024 the recipients may use.
+    assert_eq!(sent[0].len(), 27);
+    assert_eq!(verdict.recipients.len(), (4096 - 1024) / 30);
+    for (listed, sent) in verdict.recipients.iter().zip(&sent) {
+        assert_eq!(&listed.address, sent, "a prefix of what was sent, in order");
+    }
+    assert!(verdict.margin.is_finite());
+    assert!(running.stop().await);
 }
