@@ -245,14 +245,8 @@ where
                 let n = keep(&value);
                 if n > 0 || matches!(accepted.keep, Keep::All) {
                     let room = self.scan_room();
-                    let m = &mut self.message;
-                    if room > name.len() + 4 {
-                        m.raw.extend_from_slice(name.as_bytes());
-                        m.raw.extend_from_slice(b": ");
-                        let take = n.min(room - name.len() - 4);
-                        m.raw.extend_from_slice(&value[..take]);
-                        m.raw.extend_from_slice(b"\r\n");
-                    }
+                    let value = value.get(..n).unwrap_or(&value);
+                    append_field(&mut self.message.raw, &name, value, room);
                 }
             }
             Frame::Chunk { data } => {
@@ -411,6 +405,38 @@ where
     }
 }
 
+/// Appends `name: value` CRLF to the message assembled for scoring, in at most `room`
+/// bytes (the value is cut to fit; nothing is written when not even the name fits).
+///
+/// The field must stay one field (PROTOCOL.md §2, `FIELD`): CR, LF, NUL and `:` in the name,
+/// and a CR or LF in the value that does not start a fold (CRLF or LF followed by SP or
+/// HTAB), are written as spaces, so a relay's field can never forge another header line.
+fn append_field(raw: &mut Vec<u8>, name: &str, value: &[u8], room: usize) {
+    let overhead = name.len() + 4;
+    if room <= overhead {
+        return;
+    }
+    raw.extend(name.bytes().map(|b| {
+        if matches!(b, b'\r' | b'\n' | 0 | b':') {
+            b' '
+        } else {
+            b
+        }
+    }));
+    raw.extend_from_slice(b": ");
+    let value = value.get(..room - overhead).unwrap_or(value);
+    let blank_at = |i: usize| matches!(value.get(i), Some(b' ' | b'\t'));
+    for (i, &b) in value.iter().enumerate() {
+        let folds = match b {
+            b'\r' => value.get(i + 1) == Some(&b'\n') && blank_at(i + 2),
+            b'\n' => blank_at(i + 1),
+            _ => true,
+        };
+        raw.push(if folds { b } else { b' ' });
+    }
+    raw.extend_from_slice(b"\r\n");
+}
+
 fn log_verdict(
     id: &str,
     decisions: &[(String, Action)],
@@ -489,4 +515,47 @@ where
         }
     }
     let _ = stream.shutdown().await;
+}
+
+#[cfg(test)]
+mod tests {
+    use super::append_field;
+
+    fn field(name: &str, value: &[u8], room: usize) -> Vec<u8> {
+        let mut raw = Vec::new();
+        append_field(&mut raw, name, value, room);
+        raw
+    }
+
+    #[test]
+    fn a_field_is_always_one_header_field() {
+        assert_eq!(field("Subject", b"hi", 100), b"Subject: hi\r\n");
+        assert_eq!(
+            field("X-A\r\nBcc", b"v", 100),
+            b"X-A  Bcc: v\r\n",
+            "CR and LF in a name"
+        );
+        assert_eq!(field("X:\0Y", b"v", 100), b"X  Y: v\r\n", "':' and NUL");
+        assert_eq!(
+            field("X-B", b"x\r\nBcc: y\rz\n", 100),
+            b"X-B: x  Bcc: y z \r\n",
+            "line breaks in a value that are not folding"
+        );
+        assert_eq!(
+            field("X-C", b"a\r\n\tb\n c", 100),
+            b"X-C: a\r\n\tb\n c\r\n",
+            "folding is kept"
+        );
+        // Names the extractor must still score are left alone (issue 7, item 1).
+        assert_eq!(field("X Y", b"z", 100), b"X Y: z\r\n");
+        assert_eq!(field("", b"z", 100), b": z\r\n");
+    }
+
+    #[test]
+    fn a_field_is_cut_to_the_room_left() {
+        assert_eq!(field("Subject", b"0123456789", 15), b"Subject: 0123\r\n");
+        assert_eq!(field("Subject", b"0123", 11), b"");
+        // A CRLF fold cut in half is no fold any more.
+        assert_eq!(field("A", b"x\r\n y", 7), b"A: x \r\n");
+    }
 }

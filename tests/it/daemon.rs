@@ -1271,3 +1271,66 @@ async fn a_thousand_recipients_with_the_smallest_frame_limit_still_get_a_verdict
     assert!(verdict.margin.is_finite());
     assert!(running.stop().await);
 }
+
+/// Sends one message of `fields` and `body` on a fresh connection; its verdict.
+fn scan_fields(addr: SocketAddr, fields: &[(&str, &[u8])], body: &[u8]) -> tamis::proto::Verdict {
+    let mut raw = Raw::hello(addr);
+    raw.open_message();
+    let mut frames: Vec<Frame> = fields
+        .iter()
+        .map(|(name, value)| Frame::Field {
+            name: name.to_string(),
+            value: value.to_vec(),
+        })
+        .collect();
+    frames.push(Frame::Chunk {
+        data: body.to_vec(),
+    });
+    frames.push(Frame::Seal);
+    raw.send_together(&frames);
+    notices_and_verdict(&mut raw, 1 << 20).1
+}
+
+/// Issue 11: a FIELD name (or value) holding CR or LF was written verbatim into the message
+/// assembled for scoring, so a relay's field could forge further header fields — here a
+/// Content-Transfer-Encoding that turns the body into base64 noise. PROTOCOL.md §2 now says
+/// CR, LF, NUL and ':' in a name, and line breaks in a value that are not folding, are
+/// assembled as spaces: the verdict must equal that of the same message with spaces there.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn line_breaks_in_field_names_and_values_cannot_forge_header_fields() {
+    let (running, _) = daemon(loopback()).await;
+    let addr = running.tcp.expect("tcp");
+    tokio::task::spawn_blocking(move || {
+        let body: &[u8] = b"Buy cheap watches now! Limited offer, click here to order today.\r\n";
+        let base: [(&str, &[u8]); 2] = [
+            ("From", b"Shop <deals@example.net>"),
+            ("Subject", b"cheap watches"),
+        ];
+        let margin_with = |extra: (&str, &[u8])| {
+            let mut fields = base.to_vec();
+            fields.push(extra);
+            scan_fields(addr, &fields, body).margin
+        };
+        let forged_name = margin_with(("X-A\r\nContent-Transfer-Encoding", b"base64"));
+        let spaced_name = margin_with(("X-A  Content-Transfer-Encoding", b"base64"));
+        let real = margin_with(("Content-Transfer-Encoding", b"base64"));
+        assert_ne!(
+            real.to_bits(),
+            spaced_name.to_bits(),
+            "the forged field would matter"
+        );
+        assert_eq!(forged_name.to_bits(), spaced_name.to_bits());
+        let colon_nul = margin_with(("X-A:\0Content-Transfer-Encoding", b"base64"));
+        assert_eq!(colon_nul.to_bits(), spaced_name.to_bits());
+
+        let forged_value = margin_with(("X-B", b"x\r\nContent-Transfer-Encoding: base64"));
+        let spaced_value = margin_with(("X-B", b"x  Content-Transfer-Encoding: base64"));
+        assert_eq!(forged_value.to_bits(), spaced_value.to_bits());
+        // Folding (CRLF or LF followed by a blank) is kept as it is.
+        let folded = margin_with(("X-B", b"x\r\n Content-Transfer-Encoding: base64"));
+        assert!(folded.is_finite());
+    })
+    .await
+    .expect("task");
+    assert!(running.stop().await);
+}
