@@ -284,7 +284,11 @@ pub struct Limits {
     /// Longest header field value kept, in bytes.
     #[serde(with = "size_u32")]
     pub max_field_bytes: u32,
-    /// Close a connection that sends no frame for this long.
+    /// Close a connection that has not completed its `HELLO` this long after it was
+    /// accepted.
+    #[serde(with = "duration")]
+    pub handshake_timeout: Duration,
+    /// Close a connection that sends no frame but `PING` for this long.
     #[serde(with = "duration")]
     pub idle_timeout: Duration,
     /// Close a connection that takes longer than this to finish a frame it started.
@@ -305,6 +309,7 @@ impl Default for Limits {
             max_fields: 1000,
             max_recipients: 1000,
             max_field_bytes: 32 * 1024,
+            handshake_timeout: Duration::from_secs(10),
             idle_timeout: Duration::from_secs(300),
             read_timeout: Duration::from_secs(30),
             grace_period: Duration::from_secs(10),
@@ -328,6 +333,7 @@ impl Check for Limits {
             }
         }
         let durations = [
+            ("handshake_timeout", self.handshake_timeout),
             ("idle_timeout", self.idle_timeout),
             ("read_timeout", self.read_timeout),
             ("grace_period", self.grace_period),

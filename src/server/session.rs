@@ -7,7 +7,9 @@
 //! in a session ends in that session (logged and counted), never in the listener.
 
 use std::sync::Arc;
-use std::time::{Duration, Instant};
+use std::time::Duration;
+
+use tokio::time::Instant;
 
 use bytes::{Buf, BytesMut};
 use tokio::io::{AsyncRead, AsyncReadExt, AsyncWrite, AsyncWriteExt};
@@ -20,8 +22,8 @@ use crate::metrics::Metrics;
 use crate::policy::{self, Action, HeaderEdit, UnscannedReason};
 use crate::proto::address::{self, Role};
 use crate::proto::{
-    Edit, EditOp, FaultCode, Frame, Keep, Limits, MIN_MAX_FRAME, RecipientAction, SessionState,
-    Verdict, encode_frame_within, parse_frame,
+    Edit, EditOp, FaultCode, Frame, Keep, Limits, MIN_MAX_FRAME, Phase, RecipientAction,
+    SessionState, Verdict, encode_frame_within, parse_frame,
 };
 
 /// Everything a session needs from the daemon.
@@ -39,6 +41,18 @@ pub struct Context {
 }
 
 impl Context {
+    /// A context serving `engine` under `limits`, counting into `metrics`, named after this
+    /// build, with its own shutdown token.
+    pub fn new(engine: SharedEngine, metrics: Arc<Metrics>, limits: ConfigLimits) -> Context {
+        Context {
+            engine,
+            metrics,
+            limits,
+            server_name: format!("tamis {}", env!("CARGO_PKG_VERSION")),
+            shutdown: CancellationToken::new(),
+        }
+    }
+
     fn protocol_limits(&self) -> Limits {
         Limits {
             max_frame: self.limits.max_frame_bytes,
@@ -46,6 +60,74 @@ impl Context {
             max_fields: self.limits.max_fields,
             max_recipients: self.limits.max_recipients,
             max_field_value: self.limits.max_field_bytes,
+        }
+    }
+}
+
+/// The clocks a connection is held to (PROTOCOL.md §7).
+struct Timers {
+    /// When the connection was accepted: `HELLO` must be complete within the handshake
+    /// timeout from here.
+    accepted: Instant,
+    /// The last frame other than `PING`: the idle timeout runs from here, so `PING` alone
+    /// cannot hold a connection.
+    active: Instant,
+    /// When the frame now being received began to arrive: a frame must be complete within
+    /// the read timeout however slowly its bytes trickle in.
+    frame_started: Option<Instant>,
+}
+
+/// Which clock ran out.
+#[derive(Debug, Clone, Copy)]
+enum Timer {
+    Handshake,
+    Idle,
+    Frame,
+}
+
+impl Timer {
+    fn explain(self, limits: &ConfigLimits) -> String {
+        let show = crate::config::duration::display;
+        match self {
+            Timer::Handshake => format!("no HELLO within {}", show(limits.handshake_timeout)),
+            Timer::Idle => format!("no frame but PING for {}", show(limits.idle_timeout)),
+            Timer::Frame => format!("frame not completed within {}", show(limits.read_timeout)),
+        }
+    }
+}
+
+impl Timers {
+    fn new(now: Instant) -> Timers {
+        Timers {
+            accepted: now,
+            active: now,
+            frame_started: None,
+        }
+    }
+
+    fn frame_done(&mut self, frame: &Frame, now: Instant) {
+        self.frame_started = None;
+        if !matches!(frame, Frame::Ping { .. }) {
+            self.active = now;
+        }
+    }
+
+    fn frame_begun(&mut self, now: Instant) {
+        self.frame_started.get_or_insert(now);
+    }
+
+    /// The earliest deadline and the clock it belongs to.
+    fn next(&self, limits: &ConfigLimits, handshake_done: bool) -> (Instant, Timer) {
+        let waiting = if handshake_done {
+            (self.active + limits.idle_timeout, Timer::Idle)
+        } else {
+            (self.accepted + limits.handshake_timeout, Timer::Handshake)
+        };
+        match self.frame_started {
+            Some(started) if started + limits.read_timeout < waiting.0 => {
+                (started + limits.read_timeout, Timer::Frame)
+            }
+            _ => waiting,
         }
     }
 }
@@ -103,15 +185,13 @@ where
 {
     async fn run(&mut self) -> std::io::Result<()> {
         let max_frame = self.ctx.limits.max_frame_bytes;
-        // When the frame now being received began to arrive: a frame must be complete within
-        // the read timeout however slowly its bytes trickle in.
-        let mut frame_started: Option<Instant> = None;
+        let mut timers = Timers::new(Instant::now());
         loop {
             loop {
                 match parse_frame(&self.read, max_frame) {
                     Ok(Some((frame, used))) => {
                         self.read.advance(used);
-                        frame_started = None;
+                        timers.frame_done(&frame, Instant::now());
                         if let Flow::Close = self.handle(frame).await? {
                             return self.finish().await;
                         }
@@ -129,25 +209,16 @@ where
                 self.send(&Frame::ServerBye).await?;
                 return self.finish().await;
             }
-            let limits = &self.ctx.limits;
-            let wait = if self.read.is_empty() {
-                limits.idle_timeout
-            } else {
-                let started = *frame_started.get_or_insert_with(Instant::now);
-                limits.read_timeout.saturating_sub(started.elapsed())
-            };
+            if !self.read.is_empty() {
+                timers.frame_begun(Instant::now());
+            }
+            let handshake_done = self.state.phase() != Phase::Start;
+            let (deadline, timer) = timers.next(&self.ctx.limits, handshake_done);
             let shutdown = self.ctx.shutdown.clone();
             tokio::select! {
-                read = tokio::time::timeout(wait, self.stream.read_buf(&mut self.read)) => match read {
+                read = tokio::time::timeout_at(deadline, self.stream.read_buf(&mut self.read)) => match read {
                     Err(_elapsed) => {
-                        let text = if self.read.is_empty() {
-                            format!("no frame for {}", crate::config::duration::display(limits.idle_timeout))
-                        } else {
-                            format!(
-                                "frame not completed within {}",
-                                crate::config::duration::display(limits.read_timeout)
-                            )
-                        };
+                        let text = timer.explain(&self.ctx.limits);
                         self.fault(FaultCode::Idle, true, &text).await?;
                         return self.finish().await;
                     }

@@ -276,6 +276,7 @@ fn semantic_errors_are_refused_with_what_to_do() {
         ("[limits]\nmax_connections = 0\n", "at least 1", 2),
         ("[limits]\nidle_timeout = 0\n", "positive", 2),
         ("[limits]\nread_timeout = \"0s\"\n", "zero", 2),
+        ("[limits]\nhandshake_timeout = \"0s\"\n", "zero", 2),
         ("[limits]\nmax_message_bytes = \"0 MiB\"\n", "zero", 2),
         ("[limits]\ngrace_period = \"11m\"\n", "10 minutes", 1),
         ("[limits]\nmax_frame_bytes = 1000\n", "4096", 1),
@@ -661,7 +662,16 @@ fn domain_labels_are_bounded_to_the_policy() {
         .filter_map(|l| l.split("kind=\"").nth(1))
         .filter_map(|r| r.split('"').next())
         .collect();
-    assert!(kinds.contains("other") && kinds.len() == 12, "{kinds:?}");
+    assert!(
+        kinds.contains("other") && kinds.len() == tamis::metrics::PROTOCOL_ERROR_KINDS.len() + 1,
+        "{kinds:?}"
+    );
+    for code in tamis::proto::FaultCode::ALL {
+        assert!(
+            kinds.contains(code.name().to_lowercase().as_str()),
+            "{code}"
+        );
+    }
 
     // A reload that adds a domain gives it its own label from then on.
     m.set_domains(["example.org", "new.example.org"]);

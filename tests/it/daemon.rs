@@ -1334,3 +1334,179 @@ async fn line_breaks_in_field_names_and_values_cannot_forge_header_fields() {
     .expect("task");
     assert!(running.stop().await);
 }
+
+/// Timeouts, on tokio's paused clock: the runtime jumps to the next timer whenever every
+/// task waits, so minutes pass in milliseconds and the times measured are exact. Sessions
+/// run over an in-memory stream, which wakes the other side as soon as bytes are written;
+/// loopback TCP may deliver them a moment later, after the clock has already jumped.
+mod timers {
+    use super::*;
+    use tamis::server::session::{Context, serve_connection};
+    use tokio::io::{AsyncReadExt, AsyncWriteExt, DuplexStream};
+    use tokio::time::Instant;
+
+    /// One session served over an in-memory stream; the client's end.
+    fn session(config: &Config) -> AsyncRaw {
+        let decisions = Decisions {
+            policy: config.policy.clone(),
+            headers: config.headers.clone(),
+            on_failure: config.on_failure,
+        };
+        let engine = Engine::new(model().clone(), "test model", decisions).expect("engine");
+        let metrics = Arc::new(Metrics::new(config.policy.domains().keys()).expect("metrics"));
+        let ctx = Arc::new(Context::new(
+            SharedEngine::new(engine),
+            metrics,
+            config.limits.clone(),
+        ));
+        let (client, server) = tokio::io::duplex(1 << 20);
+        tokio::spawn(serve_connection(server, "test".to_string(), ctx));
+        AsyncRaw {
+            stream: client,
+            buf: BytesMut::new(),
+        }
+    }
+
+    struct AsyncRaw {
+        stream: DuplexStream,
+        buf: BytesMut,
+    }
+
+    impl AsyncRaw {
+        async fn hello(config: &Config) -> AsyncRaw {
+            let mut raw = session(config);
+            raw.send(&Frame::Hello {
+                version: 1,
+                max_frame: 1 << 20,
+                client: "timers".into(),
+            })
+            .await;
+            assert!(matches!(raw.next().await, Some(Frame::Welcome { .. })));
+            raw
+        }
+
+        async fn send(&mut self, frame: &Frame) {
+            let mut out = BytesMut::new();
+            encode_frame(frame, &mut out).expect("encodes");
+            // The server may have closed already; what it sent before is still read.
+            let _ = self.stream.write_all(&out).await;
+        }
+
+        async fn next(&mut self) -> Option<Frame> {
+            loop {
+                if let Some((frame, used)) =
+                    parse_frame(&self.buf, 1 << 20).expect("server frames parse")
+                {
+                    let _ = self.buf.split_to(used);
+                    return Some(frame);
+                }
+                match self.stream.read_buf(&mut self.buf).await {
+                    Ok(0) | Err(_) => return None,
+                    Ok(_) => {}
+                }
+            }
+        }
+    }
+
+    fn is_idle_fault(frame: &Option<Frame>) -> bool {
+        matches!(
+            frame,
+            Some(Frame::Fault {
+                code: FaultCode::Idle,
+                fatal: true,
+                ..
+            })
+        )
+    }
+
+    /// Issue reproducer: the 5-minute idle timeout applied before HELLO too, so a silent
+    /// connection held its slot for 5 minutes. A connection must say HELLO within the
+    /// handshake timeout (default 10 s).
+    #[tokio::test(start_paused = true)]
+    async fn a_connection_that_never_says_hello_is_closed_after_the_handshake_timeout() {
+        let config = loopback();
+        let mut silent = session(&config);
+        let start = Instant::now();
+        let got = silent.next().await;
+        let waited = start.elapsed();
+        assert!(is_idle_fault(&got), "{got:?}");
+        assert!(silent.next().await.is_none(), "closed after the fault");
+        assert!(
+            waited >= Duration::from_secs(10) && waited < Duration::from_secs(11),
+            "{waited:?}"
+        );
+        // A HELLO that trickles in a byte at a time does not extend it either.
+        let mut slow = session(&config);
+        let start = Instant::now();
+        let mut hello = BytesMut::new();
+        encode_frame(
+            &Frame::Hello {
+                version: 1,
+                max_frame: 1 << 20,
+                client: "slow".into(),
+            },
+            &mut hello,
+        )
+        .expect("encodes");
+        for byte in hello.iter().take(hello.len() - 1) {
+            let _ = slow.stream.write_all(&[*byte]).await;
+            tokio::time::sleep(Duration::from_millis(500)).await;
+        }
+        let got = slow.next().await;
+        assert!(is_idle_fault(&got), "{got:?}");
+        assert!(
+            start.elapsed() < Duration::from_secs(11),
+            "{:?}",
+            start.elapsed()
+        );
+    }
+
+    /// Issue reproducer: a connection that sent PING within each idle period kept its slot
+    /// for ever. PING is answered but does not extend the idle timeout; a message does.
+    #[tokio::test(start_paused = true)]
+    async fn ping_alone_does_not_keep_a_connection_open() {
+        let mut raw = AsyncRaw::hello(&loopback()).await;
+        let start = Instant::now();
+        let mut token = 0;
+        let mut message_sent = false;
+        let closed_at = loop {
+            assert!(
+                start.elapsed() < Duration::from_secs(1200),
+                "still open after 20 minutes of PINGs"
+            );
+            match tokio::time::timeout(Duration::from_secs(70), raw.next()).await {
+                Err(_) if !message_sent && start.elapsed() >= Duration::from_secs(200) => {
+                    // Activity at 210 s: the idle timeout now runs from here.
+                    message_sent = true;
+                    raw.send(&Frame::Sender {
+                        address: "a@example.net".into(),
+                    })
+                    .await;
+                    raw.send(&Frame::Recipient {
+                        address: "b@example.org".into(),
+                    })
+                    .await;
+                    raw.send(&Frame::Chunk { data: message(8) }).await;
+                    raw.send(&Frame::Seal).await;
+                    let verdict = raw.next().await;
+                    assert!(matches!(verdict, Some(Frame::Verdict(_))), "{verdict:?}");
+                }
+                Err(_) => {
+                    token += 1;
+                    raw.send(&Frame::Ping { token }).await;
+                    assert_eq!(raw.next().await, Some(Frame::Pong { token }));
+                }
+                Ok(frame) => {
+                    assert!(is_idle_fault(&frame), "{frame:?}");
+                    break start.elapsed();
+                }
+            }
+        };
+        assert!(token >= 5, "PINGs were answered meanwhile ({token})");
+        // Idle timeout (300 s) after the message at 210 s.
+        assert!(
+            closed_at >= Duration::from_secs(510) && closed_at < Duration::from_secs(511),
+            "{closed_at:?}"
+        );
+    }
+}
