@@ -44,7 +44,7 @@ pub const OTHER: &str = "other";
 
 /// The `kind` values of `tamis_protocol_errors_total`: the `FAULT` names of
 /// `proto/PROTOCOL.md` §5, lower-cased.
-pub const PROTOCOL_ERROR_KINDS: [&str; 13] = [
+pub const PROTOCOL_ERROR_KINDS: [&str; 14] = [
     "malformed",
     "unknown_kind",
     "out_of_order",
@@ -58,6 +58,7 @@ pub const PROTOCOL_ERROR_KINDS: [&str; 13] = [
     "shutting_down",
     "bad_address",
     "verdict_too_large",
+    "denied",
 ];
 
 /// Bucket bounds of `tamis_margin`: -3 to 3 in steps of 0.25, which resolves the usual

@@ -152,6 +152,24 @@ class ClientFrameTests(unittest.TestCase):
         self.roundtrip(tc.hello_frame(1, 65536, "r1"),
                        hx("0000000b 01 0001 00010000 0002 7231"))
 
+    def test_s3_hello_with_secret(self):
+        # §3: HELLO may end with ``secret: bytes``; without it the bytes are
+        # those of a plain HELLO.
+        self.roundtrip(tc.hello_frame(1, 65536, "r1", b"k3y!"),
+                       hx("00000013 01 0001 00010000 0002 7231 00000004") + b"k3y!")
+        self.roundtrip(tc.hello_frame(1, 65536, "r1"),
+                       hx("0000000b 01 0001 00010000 0002 7231"))
+
+    def test_s3_secret_file_drops_one_line_end(self):
+        import tempfile
+        with tempfile.TemporaryDirectory() as d:
+            path = os.path.join(d, "s")
+            for content, want in ((b"abc\n", b"abc"), (b"abc\r\n", b"abc"),
+                                  (b"abc", b"abc"), (b"abc\n\n", b"abc\n")):
+                with open(path, "wb") as fh:
+                    fh.write(content)
+                self.assertEqual(tc.read_secret_file(path), want)
+
     def test_s2_peer(self):
         # §2 PEER: address str, port u16, greeting str.
         self.roundtrip(tc.peer_frame("192.0.2.7", 2525, "mx.example.test"),
@@ -659,6 +677,18 @@ class VectorConversationTests(unittest.TestCase):
         # vectors/fault_version.txt: HELLO version 0 -> FAULT VERSION (§3).
         self.fatal("fault_version.txt", tc.VERSION, lambda c: c.hello(version=0),
                    client_name="relay-test/0")
+
+    def test_vec_handshake_secret(self):
+        # vectors/handshake_secret.txt: HELLO carries the shared secret (§3).
+        srv = VectorServer("handshake_secret.txt")
+        c = srv.client(secret=b"5f2b6c0e9d8a7b1c4e3f2a1b0c9d8e7f")
+        c.hello()
+        srv.finish(self)
+        c.close()
+
+    def test_vec_fault_denied(self):
+        # vectors/fault_denied.txt: no secret where one is required (§3).
+        self.fatal("fault_denied.txt", tc.DENIED, lambda c: c.hello())
 
     def test_vec_fault_busy(self):
         # vectors/fault_busy.txt: FAULT BUSY instead of WELCOME (§3).

@@ -40,11 +40,14 @@ pub enum FaultCode {
     BadAddress = 12,
     /// The `VERDICT` could not be made to fit the client's `max_frame`.
     VerdictTooLarge = 13,
+    /// The client may not connect: its address is not allowed, or its `HELLO` lacks the
+    /// shared secret or carries a wrong one.
+    Denied = 14,
 }
 
 impl FaultCode {
     /// Every code, in wire order; handy for exhaustive tests and strategies.
-    pub const ALL: [FaultCode; 13] = [
+    pub const ALL: [FaultCode; 14] = [
         FaultCode::Malformed,
         FaultCode::UnknownKind,
         FaultCode::OutOfOrder,
@@ -58,6 +61,7 @@ impl FaultCode {
         FaultCode::ShuttingDown,
         FaultCode::BadAddress,
         FaultCode::VerdictTooLarge,
+        FaultCode::Denied,
     ];
 
     /// The wire value.
@@ -97,6 +101,7 @@ impl FaultCode {
             FaultCode::ShuttingDown => "SHUTTING_DOWN",
             FaultCode::BadAddress => "BAD_ADDRESS",
             FaultCode::VerdictTooLarge => "VERDICT_TOO_LARGE",
+            FaultCode::Denied => "DENIED",
         }
     }
 }

@@ -15,7 +15,9 @@ use bytes::{Buf, BytesMut};
 use tokio::io::{AsyncRead, AsyncReadExt, AsyncWrite, AsyncWriteExt};
 use tokio_util::sync::CancellationToken;
 
+use super::access::Secret;
 use super::engine::{Engine, SharedEngine};
+use super::throttle::Throttle;
 use crate::config::Limits as ConfigLimits;
 use crate::logsafe::safe;
 use crate::metrics::Metrics;
@@ -27,6 +29,7 @@ use crate::proto::{
 };
 
 /// Everything a session needs from the daemon.
+#[derive(Clone)]
 pub struct Context {
     /// The engine in force (swapped by reloads).
     pub engine: SharedEngine,
@@ -38,6 +41,10 @@ pub struct Context {
     pub server_name: String,
     /// Cancelled when the daemon shuts down.
     pub shutdown: CancellationToken,
+    /// The shared secret a `HELLO` must carry on this listener; `None` asks for none.
+    pub secret: Option<Arc<Secret>>,
+    /// Refused handshakes are logged at most once a second.
+    pub refused_log: Arc<Throttle>,
 }
 
 impl Context {
@@ -50,6 +57,8 @@ impl Context {
             limits,
             server_name: format!("tamis {}", env!("CARGO_PKG_VERSION")),
             shutdown: CancellationToken::new(),
+            secret: None,
+            refused_log: Arc::new(Throttle::new(Duration::from_secs(1))),
         }
     }
 
@@ -289,7 +298,23 @@ where
             }
         };
         match frame {
-            Frame::Hello { .. } => {
+            Frame::Hello { secret, .. } => {
+                if let Some(expected) = &self.ctx.secret {
+                    let refusal = match &secret {
+                        None => Some("HELLO carries no shared secret; this listener requires one"),
+                        Some(given) if !expected.matches(given) => {
+                            Some("HELLO carries a wrong shared secret")
+                        }
+                        Some(_) => None,
+                    };
+                    if let Some(text) = refusal {
+                        if let Some(held_back) = self.ctx.refused_log.admit(Instant::now()) {
+                            tracing::warn!(reason = text, held_back, "handshake refused");
+                        }
+                        self.fault(FaultCode::Denied, true, text).await?;
+                        return Ok(Flow::Close);
+                    }
+                }
                 if let Some(welcome) = self.state.welcome(&self.ctx.server_name) {
                     self.send(&welcome).await?;
                 }
@@ -553,9 +578,9 @@ fn wire_edit(edit: &HeaderEdit) -> Edit {
 /// How long a refused connection waits for its `HELLO` before being closed.
 pub const BUSY_HELLO_WAIT: Duration = Duration::from_secs(5);
 
-/// Answers a connection over the limit: reads its `HELLO` (PROTOCOL.md §3), replies
-/// `FAULT BUSY` and closes.
-pub async fn refuse_busy<S>(mut stream: S, metrics: Arc<Metrics>)
+/// Answers a refused connection: reads its `HELLO` (PROTOCOL.md §3), replies with a fatal
+/// `FAULT` of `code` and closes. The caller counts the refusal.
+pub async fn refuse_after_hello<S>(mut stream: S, code: FaultCode, text: &str)
 where
     S: AsyncRead + AsyncWrite + Unpin + Send,
 {
@@ -573,13 +598,12 @@ where
         }
     })
     .await;
-    metrics.protocol_error(FaultCode::Busy.name());
     if let Ok(true) = hello {
         let mut out = BytesMut::new();
         let frame = Frame::Fault {
-            code: FaultCode::Busy,
+            code,
             fatal: true,
-            text: "connection limit reached; retry later".to_string(),
+            text: text.to_string(),
         };
         if encode_frame_within(&frame, MIN_MAX_FRAME, &mut out).is_ok() {
             let _ = stream.write_all(&out).await;

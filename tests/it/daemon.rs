@@ -126,6 +126,7 @@ impl Raw {
             version: 1,
             max_frame: 1 << 20,
             client: "test".into(),
+            secret: None,
         });
         assert!(matches!(raw.next(), Some(Frame::Welcome { .. })));
         raw
@@ -476,6 +477,7 @@ mod hostile {
                             version: 1,
                             max_frame: 1 << 20,
                             client: "one too many".into(),
+                            secret: None,
                         });
                         extra.fatal()
                     })
@@ -1119,6 +1121,7 @@ fn hello_small(addr: SocketAddr) -> Raw {
         version: 1,
         max_frame: 4096,
         client: "small frames".into(),
+        secret: None,
     });
     assert!(matches!(raw.next_within(4096), Some(Frame::Welcome { .. })));
     raw
@@ -1335,6 +1338,145 @@ async fn line_breaks_in_field_names_and_values_cannot_forge_header_fields() {
     assert!(running.stop().await);
 }
 
+/// Who may connect over TCP (PROTOCOL.md §3): an allow-list of address ranges, a cap per
+/// peer address and a shared secret in HELLO. Issue 7, item 3: any local user could take
+/// every connection slot.
+mod access {
+    use super::*;
+
+    fn hello_with(addr: SocketAddr, secret: Option<&[u8]>) -> Raw {
+        let mut raw = Raw::connect(addr);
+        raw.send(&Frame::Hello {
+            version: 1,
+            max_frame: 1 << 20,
+            client: "access".into(),
+            secret: secret.map(<[u8]>::to_vec),
+        });
+        raw
+    }
+
+    fn protocol_errors(metrics: &Metrics, kind: &str) -> String {
+        let prefix = format!("tamis_protocol_errors_total{{kind=\"{kind}\"}} ");
+        metrics
+            .render()
+            .lines()
+            .find(|l| l.starts_with(&prefix))
+            .map(|l| l.trim_start_matches(&prefix).to_string())
+            .unwrap_or_default()
+    }
+
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn a_peer_outside_the_allow_list_is_denied() {
+        let mut config = loopback();
+        config.access.tcp_allow = vec!["192.0.2.0/24".parse().expect("cidr")];
+        let (running, metrics) = daemon(config).await;
+        let addr = running.tcp.expect("tcp");
+        let code = tokio::task::spawn_blocking(move || hello_with(addr, None).fatal())
+            .await
+            .expect("task");
+        assert_eq!(code, FaultCode::Denied);
+        assert_eq!(protocol_errors(&metrics, "denied"), "1");
+        assert!(running.stop().await);
+    }
+
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn a_shared_secret_is_required_when_configured() {
+        use std::os::unix::fs::PermissionsExt;
+        let dir = tempfile::tempdir().expect("temp dir");
+        let path = dir.path().join("relay.secret");
+        std::fs::write(&path, "5f2b6c0e9d8a7b1c4e3f2a1b0c9d8e7f\n").expect("write");
+        std::fs::set_permissions(&path, std::fs::Permissions::from_mode(0o600)).expect("chmod");
+        let mut config = loopback();
+        config.access.secret_file = Some(path.clone());
+        let (running, metrics) = daemon(config).await;
+        let addr = running.tcp.expect("tcp");
+        let root = env!("CARGO_MANIFEST_DIR");
+        tokio::task::spawn_blocking(move || {
+            let good = b"5f2b6c0e9d8a7b1c4e3f2a1b0c9d8e7f";
+            assert_eq!(hello_with(addr, None).fatal(), FaultCode::Denied);
+            assert_eq!(
+                hello_with(addr, Some(b"5f2b6c0e9d8a7b1c4e3f2a1b0c9d8e70")).fatal(),
+                FaultCode::Denied
+            );
+            assert_eq!(
+                hello_with(addr, Some(&good[..31])).fatal(),
+                FaultCode::Denied
+            );
+            let mut raw = hello_with(addr, Some(good));
+            assert!(matches!(raw.next(), Some(Frame::Welcome { .. })));
+            let mut client =
+                Client::connect_with_secret(&addr.to_string(), Duration::from_secs(20), Some(good))
+                    .expect("connect");
+            let verdict = client
+                .scan("a@example.net", &["b@example.org".to_string()], &message(9))
+                .expect("verdict");
+            assert!(verdict.margin.is_finite());
+            // The independent Python client, written from PROTOCOL.md, reads the same file.
+            let file = dir.path().join("m.eml");
+            std::fs::write(&file, message(9)).expect("write");
+            let out = std::process::Command::new(crate::python::interpreter())
+                .arg(format!("{root}/clients/python/tamis_client.py"))
+                .args(["--connect", &addr.to_string(), "--from", "a@example.net"])
+                .args([
+                    "--rcpt",
+                    "b@example.org",
+                    "--format",
+                    "json",
+                    "--secret-file",
+                ])
+                .arg(&path)
+                .arg(&file)
+                .output()
+                .expect("run the Python client");
+            let text = String::from_utf8_lossy(&out.stdout);
+            assert!(
+                out.status.success(),
+                "{text}{}",
+                String::from_utf8_lossy(&out.stderr)
+            );
+            let line: serde_json::Value = serde_json::from_str(text.trim()).expect("JSON");
+            assert_eq!(line["margin"].as_f64(), Some(verdict.margin));
+        })
+        .await
+        .expect("task");
+        assert_eq!(protocol_errors(&metrics, "denied"), "3");
+        assert!(running.stop().await);
+    }
+
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn one_peer_cannot_take_more_than_its_share_of_connections() {
+        let mut config = loopback();
+        config.limits.max_connections_per_peer = Some(3);
+        let (running, _) = daemon(config).await;
+        let addr = running.tcp.expect("tcp");
+        tokio::task::spawn_blocking(move || {
+            let mut held: Vec<Raw> = (0..3).map(|_| Raw::hello(addr)).collect();
+            let mut fourth = hello_with(addr, None);
+            assert_eq!(fourth.fatal(), FaultCode::Busy);
+            // A slot given back is free again.
+            let mut first = held.remove(0);
+            first.send(&Frame::ClientBye);
+            assert_eq!(first.next(), Some(Frame::ServerBye));
+            assert_eq!(first.next(), None);
+            let mut again = None;
+            for _ in 0..100 {
+                let mut raw = hello_with(addr, None);
+                match raw.next() {
+                    Some(Frame::Welcome { .. }) => {
+                        again = Some(raw);
+                        break;
+                    }
+                    _ => std::thread::sleep(Duration::from_millis(20)),
+                }
+            }
+            assert!(again.is_some(), "the freed slot was never offered again");
+        })
+        .await
+        .expect("task");
+        assert!(running.stop().await);
+    }
+}
+
 /// Timeouts, on tokio's paused clock: the runtime jumps to the next timer whenever every
 /// task waits, so minutes pass in milliseconds and the times measured are exact. Sessions
 /// run over an in-memory stream, which wakes the other side as soon as bytes are written;
@@ -1379,6 +1521,7 @@ mod timers {
                 version: 1,
                 max_frame: 1 << 20,
                 client: "timers".into(),
+                secret: None,
             })
             .await;
             assert!(matches!(raw.next().await, Some(Frame::Welcome { .. })));
@@ -1444,6 +1587,7 @@ mod timers {
                 version: 1,
                 max_frame: 1 << 20,
                 client: "slow".into(),
+                secret: None,
             },
             &mut hello,
         )

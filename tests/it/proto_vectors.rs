@@ -103,6 +103,7 @@ fn hello(version: u16) -> Frame {
         version,
         max_frame: 65_536,
         client: format!("relay-test/{version}"),
+        secret: None,
     }
 }
 
@@ -418,6 +419,7 @@ fn expectations() -> Vec<(&'static str, Vec<Expect>)> {
                     version: 1,
                     max_frame: 4096,
                     client: s("relay-test/1"),
+                    secret: None,
                 }),
                 F(welcome()),
                 F(sender("alice@example.org")),
@@ -427,6 +429,25 @@ fn expectations() -> Vec<(&'static str, Vec<Expect>)> {
                     FaultCode::VerdictTooLarge,
                     "verdict does not fit max_frame 4096",
                 )),
+            ],
+        ),
+        (
+            "handshake_secret.txt",
+            vec![
+                F(Frame::Hello {
+                    version: 1,
+                    max_frame: 65_536,
+                    client: s("relay-test/1"),
+                    secret: Some(b"5f2b6c0e9d8a7b1c4e3f2a1b0c9d8e7f".to_vec()),
+                }),
+                F(welcome()),
+            ],
+        ),
+        (
+            "fault_denied.txt",
+            vec![
+                F(hello(1)),
+                F(fault(FaultCode::Denied, "HELLO carries no shared secret")),
             ],
         ),
         (
@@ -539,7 +560,8 @@ fn fault_vectors_end_with_the_code_of_the_error() {
             FaultCode::Idle
             | FaultCode::Busy
             | FaultCode::ShuttingDown
-            | FaultCode::VerdictTooLarge => {
+            | FaultCode::VerdictTooLarge
+            | FaultCode::Denied => {
                 assert_eq!(raised, None, "{name}")
             }
             _ => assert_eq!(raised, Some(code), "{name}"),
@@ -818,6 +840,8 @@ fn state_machine_accepts_the_vector_conversations() {
         "fault_idle.txt",
         "fault_busy.txt",
         "fault_shutting_down.txt",
+        "handshake_secret.txt",
+        "fault_denied.txt",
     ] {
         for (i, outcome) in replay_client(name).into_iter().enumerate() {
             assert_eq!(
@@ -957,6 +981,7 @@ fn state_machine_refuses_out_of_order_frames() {
                 version: 1,
                 max_frame: 4095,
                 client: s("c"),
+                secret: None,
             }],
             ProtoError::SmallMaxFrame {
                 announced: 4095,
@@ -976,6 +1001,7 @@ fn state_machine_allows_drop_right_after_sender_and_negotiates_the_version() {
             version: 7,
             max_frame: 4096,
             client: s("c"),
+            secret: None,
         },
         sender("a"),
         Frame::Drop,
@@ -1115,6 +1141,7 @@ fn hello_with(max_frame: u32) -> Frame {
         version: 1,
         max_frame,
         client: s("c"),
+        secret: None,
     }
 }
 
@@ -1292,13 +1319,18 @@ fn any_verdict() -> impl Strategy<Value = Verdict> {
 
 fn any_frame() -> impl Strategy<Value = Frame> {
     prop_oneof![
-        (any::<u16>(), any::<u32>(), any_str()).prop_map(|(version, max_frame, client)| {
-            Frame::Hello {
+        (
+            any::<u16>(),
+            any::<u32>(),
+            any_str(),
+            proptest::option::of(any_bytes())
+        )
+            .prop_map(|(version, max_frame, client, secret)| Frame::Hello {
                 version,
                 max_frame,
                 client,
-            }
-        }),
+                secret,
+            }),
         (any_str(), any::<u16>(), any_str()).prop_map(|(address, port, greeting)| Frame::Peer {
             address,
             port,
