@@ -14,6 +14,7 @@
 //! | `tamis_reloads_total` | counter | `outcome` |
 //! | `tamis_model_info` | gauge (always 1) | `version`, `trained_at`, `feature_spec` |
 //! | `tamis_unscanned_total` | counter | `reason` |
+//! | `tamis_accept_errors_total` | counter | |
 //!
 //! Invariant: every label takes values from a bounded set. Each distinct label value is
 //! a separate time series that the Prometheus server keeps in memory and on disk for as
@@ -120,6 +121,7 @@ pub struct Metrics {
     reloads: IntCounterVec,
     model_info: IntGaugeVec,
     unscanned: IntCounterVec,
+    accept_errors: IntCounter,
 }
 
 /// Keeps `tamis_connections_open` one higher while it lives.
@@ -237,6 +239,14 @@ impl Metrics {
                 &["reason"],
             ),
         )?;
+        let accept_errors = register(
+            &registry,
+            "tamis_accept_errors_total",
+            IntCounter::new(
+                "tamis_accept_errors_total",
+                "Relay connections the listeners failed to accept (out of descriptors, for instance).",
+            ),
+        )?;
         let metrics = Metrics {
             registry,
             domains: RwLock::new(BTreeSet::new()),
@@ -249,6 +259,7 @@ impl Metrics {
             reloads,
             model_info,
             unscanned,
+            accept_errors,
         };
         metrics.set_domains(domains);
         for kind in PROTOCOL_ERROR_KINDS.iter().chain([&OTHER]) {
@@ -381,6 +392,11 @@ impl Metrics {
         if let Some(c) = labelled(&self.protocol_errors, &[label]) {
             c.inc();
         }
+    }
+
+    /// Counts a connection a listener failed to accept.
+    pub fn accept_error(&self) {
+        self.accept_errors.inc();
     }
 
     /// Counts a reload and its outcome.

@@ -123,6 +123,7 @@ pub async fn start(
             allow: Some(config.access.tcp_allow.clone()),
             per_peer: limits.max_connections_per_peer.map(PeerCounts::new),
             refused_log: Throttle::new(LOG_INTERVAL),
+            accept_log: Throttle::new(LOG_INTERVAL),
         });
         tracker.spawn(accept_loop(listener, ctx, gate, tracker.clone()));
     }
@@ -137,6 +138,7 @@ pub async fn start(
             allow: None,
             per_peer: None,
             refused_log: Throttle::new(LOG_INTERVAL),
+            accept_log: Throttle::new(LOG_INTERVAL),
         });
         tracker.spawn(accept_loop(listener, ctx, gate, tracker.clone()));
     }
@@ -170,6 +172,8 @@ struct Gate {
     per_peer: Option<Arc<PeerCounts>>,
     /// Refusals are logged at most once a second.
     refused_log: Throttle,
+    /// Accept errors are logged at most once a second.
+    accept_log: Throttle,
 }
 
 /// Binds a Unix socket, replacing a stale socket file (never any other kind of file), and
@@ -259,10 +263,20 @@ async fn accept_loop<L: Acceptor>(
         match accepted {
             Ok((stream, peer)) => dispatch(stream, peer, &ctx, &gate, &tracker),
             Err(e) => {
-                tracing::warn!(error = %e, "accept failed");
+                accept_failed(&gate, &ctx.metrics, &e);
                 tokio::time::sleep(ACCEPT_BACKOFF).await;
             }
         }
+    }
+}
+
+/// Counts a failed accept (out of descriptors, say) and logs it, at most once a second
+/// with the number held back since the last line: under a flood the loop fails every
+/// [`ACCEPT_BACKOFF`] and would otherwise write twenty lines a second.
+fn accept_failed(gate: &Gate, metrics: &Metrics, error: &std::io::Error) {
+    metrics.accept_error();
+    if let Some(held_back) = gate.accept_log.admit(tokio::time::Instant::now()) {
+        tracing::warn!(error = %error, held_back, "accept failed");
     }
 }
 
@@ -342,5 +356,91 @@ fn refuse<S>(
         }
         // Dropping the stream closes it.
         Err(_) => drop(stream),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Every log event's text, as one buffer.
+    #[derive(Clone, Default)]
+    struct Captured(Arc<std::sync::Mutex<Vec<u8>>>);
+
+    impl std::io::Write for Captured {
+        fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+            if let Ok(mut all) = self.0.lock() {
+                all.extend_from_slice(buf);
+            }
+            Ok(buf.len())
+        }
+
+        fn flush(&mut self) -> std::io::Result<()> {
+            Ok(())
+        }
+    }
+
+    impl<'a> tracing_subscriber::fmt::MakeWriter<'a> for Captured {
+        type Writer = Captured;
+
+        fn make_writer(&'a self) -> Captured {
+            self.clone()
+        }
+    }
+
+    fn gate() -> Gate {
+        Gate {
+            permits: Arc::new(Semaphore::new(1)),
+            refusals: Arc::new(Semaphore::new(1)),
+            allow: None,
+            per_peer: None,
+            refused_log: Throttle::new(LOG_INTERVAL),
+            accept_log: Throttle::new(LOG_INTERVAL),
+        }
+    }
+
+    /// Issue 7, item 7: under a flood, 250 "accept failed" lines were written in 12 s.
+    /// Every failure is still counted in `tamis_accept_errors_total`.
+    #[tokio::test(start_paused = true)]
+    async fn accept_errors_are_logged_at_most_once_a_second_and_all_counted() {
+        let log = Captured::default();
+        let subscriber = tracing_subscriber::fmt()
+            .with_ansi(false)
+            .with_writer(log.clone())
+            .finish();
+        // With a single dispatcher registered, tracing-core decides whether a callsite is
+        // enabled from whichever thread reaches it first; a second one makes it ask all.
+        let _second = tracing::Dispatch::new(tracing_subscriber::registry());
+        let _guard = tracing::subscriber::set_default(subscriber);
+        let metrics = Metrics::new(Vec::<String>::new()).expect("metrics");
+        let gate = gate();
+        let error = std::io::Error::from_raw_os_error(24); // EMFILE, too many open files
+        for _ in 0..250 {
+            accept_failed(&gate, &metrics, &error);
+            tokio::time::sleep(Duration::from_millis(48)).await;
+        }
+        let text = String::from_utf8_lossy(&log.0.lock().map(|b| b.clone()).unwrap_or_default())
+            .into_owned();
+        let lines: Vec<&str> = text
+            .lines()
+            .filter(|l| l.contains("accept failed"))
+            .collect();
+        assert!(!lines.is_empty(), "{text}");
+        assert!(lines.len() <= 13, "{} lines in 12 s:\n{text}", lines.len());
+        let held_back: u64 = lines
+            .iter()
+            .filter_map(|l| l.split("held_back=").nth(1))
+            .filter_map(|v| v.split_whitespace().next())
+            .filter_map(|v| v.parse::<u64>().ok())
+            .sum();
+        assert!(
+            held_back + lines.len() as u64 <= 250 && held_back >= 200,
+            "{held_back}"
+        );
+        assert!(
+            metrics.render().contains("tamis_accept_errors_total 250"),
+            "{}",
+            metrics.render()
+        );
     }
 }

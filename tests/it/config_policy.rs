@@ -597,7 +597,7 @@ fn verdict_ids_are_short_unique_and_sorted() {
 
 // --- Metrics -------------------------------------------------------------------------------
 
-const FAMILIES: [&str; 9] = [
+const FAMILIES: [&str; 10] = [
     "tamis_messages_total",
     "tamis_margin",
     "tamis_scan_duration_seconds",
@@ -607,6 +607,7 @@ const FAMILIES: [&str; 9] = [
     "tamis_reloads_total",
     "tamis_model_info",
     "tamis_unscanned_total",
+    "tamis_accept_errors_total",
 ];
 
 /// Metrics after a few of every event, and one connection still open.
