@@ -353,6 +353,10 @@ pub struct Limits {
     /// Largest message scanned (header fields and body), in bytes.
     #[serde(with = "size_u64")]
     pub max_message_bytes: u64,
+    /// Bytes all open messages may hold together; a message that cannot get more is
+    /// decided on what it has (`MESSAGE_TOO_LARGE`).
+    #[serde(with = "size_u64")]
+    pub max_buffered_bytes: u64,
     /// Most header fields kept per message.
     #[serde(deserialize_with = "positive_u32")]
     pub max_fields: u32,
@@ -385,6 +389,7 @@ impl Default for Limits {
             max_connections_per_peer: None,
             max_frame_bytes: 65_536,
             max_message_bytes: 10 * 1024 * 1024,
+            max_buffered_bytes: 256 * 1024 * 1024,
             max_fields: 1000,
             max_recipients: 1000,
             max_field_bytes: 32 * 1024,
@@ -402,6 +407,7 @@ impl Check for Limits {
             ("max_connections", u64::from(self.max_connections)),
             ("max_frame_bytes", u64::from(self.max_frame_bytes)),
             ("max_message_bytes", self.max_message_bytes),
+            ("max_buffered_bytes", self.max_buffered_bytes),
             ("max_fields", u64::from(self.max_fields)),
             ("max_recipients", u64::from(self.max_recipients)),
             ("max_field_bytes", u64::from(self.max_field_bytes)),

@@ -15,6 +15,8 @@
 //! | `tamis_model_info` | gauge (always 1) | `version`, `trained_at`, `feature_spec` |
 //! | `tamis_unscanned_total` | counter | `reason` |
 //! | `tamis_accept_errors_total` | counter | |
+//! | `tamis_buffered_bytes` | gauge | |
+//! | `tamis_buffer_budget_exhausted_total` | counter | |
 //!
 //! Invariant: every label takes values from a bounded set. Each distinct label value is
 //! a separate time series that the Prometheus server keeps in memory and on disk for as
@@ -122,6 +124,8 @@ pub struct Metrics {
     model_info: IntGaugeVec,
     unscanned: IntCounterVec,
     accept_errors: IntCounter,
+    buffered_bytes: IntGauge,
+    budget_exhausted: IntCounter,
 }
 
 /// Keeps `tamis_connections_open` one higher while it lives.
@@ -247,6 +251,22 @@ impl Metrics {
                 "Relay connections the listeners failed to accept (out of descriptors, for instance).",
             ),
         )?;
+        let buffered_bytes = register(
+            &registry,
+            "tamis_buffered_bytes",
+            IntGauge::new(
+                "tamis_buffered_bytes",
+                "Bytes held by messages being assembled, against limits.max_buffered_bytes.",
+            ),
+        )?;
+        let budget_exhausted = register(
+            &registry,
+            "tamis_buffer_budget_exhausted_total",
+            IntCounter::new(
+                "tamis_buffer_budget_exhausted_total",
+                "Messages decided on part of their content because the buffer budget was spent.",
+            ),
+        )?;
         let metrics = Metrics {
             registry,
             domains: RwLock::new(BTreeSet::new()),
@@ -260,6 +280,8 @@ impl Metrics {
             model_info,
             unscanned,
             accept_errors,
+            buffered_bytes,
+            budget_exhausted,
         };
         metrics.set_domains(domains);
         for kind in PROTOCOL_ERROR_KINDS.iter().chain([&OTHER]) {
@@ -397,6 +419,16 @@ impl Metrics {
     /// Counts a connection a listener failed to accept.
     pub fn accept_error(&self) {
         self.accept_errors.inc();
+    }
+
+    /// The gauge of bytes held by messages being assembled, for the buffer budget to move.
+    pub fn buffered_bytes_gauge(&self) -> IntGauge {
+        self.buffered_bytes.clone()
+    }
+
+    /// Counts a message cut short because the buffer budget was spent.
+    pub fn budget_exhausted(&self) {
+        self.budget_exhausted.inc();
     }
 
     /// Counts a reload and its outcome.

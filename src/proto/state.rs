@@ -157,6 +157,17 @@ impl SessionState {
         self.size
     }
 
+    /// Stops taking content for the open message, as if it had passed `max_message`: the
+    /// server could not keep more of it (its memory budget is spent). Returns true when
+    /// this is news, so the caller sends the one `MESSAGE_TOO_LARGE` of the message.
+    pub fn stop_content(&mut self) -> bool {
+        if !self.message_open() || self.over_size {
+            return false;
+        }
+        self.over_size = true;
+        true
+    }
+
     /// The `WELCOME` answering the accepted `HELLO`; `None` before the handshake.
     pub fn welcome(&self, server: &str) -> Option<Frame> {
         self.version.map(|version| Frame::Welcome {

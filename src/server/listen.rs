@@ -21,6 +21,7 @@ use tokio_util::task::TaskTracker;
 use tracing::Instrument;
 
 use super::access::{self, Cidr, PeerCounts, Secret};
+use super::budget::Budget;
 use super::engine::SharedEngine;
 use super::http::{Status, serve_status};
 use super::session::{Context, refuse_after_hello, serve_connection};
@@ -40,9 +41,15 @@ pub struct Running {
     shutdown: CancellationToken,
     tracker: TaskTracker,
     grace: Duration,
+    budget: Arc<Budget>,
 }
 
 impl Running {
+    /// The budget of bytes open messages hold, shared by every listener.
+    pub fn buffer_budget(&self) -> &Arc<Budget> {
+        &self.budget
+    }
+
     /// The token whose cancellation starts a graceful shutdown.
     pub fn shutdown_token(&self) -> CancellationToken {
         self.shutdown.clone()
@@ -109,6 +116,7 @@ pub async fn start(
         shutdown: shutdown.clone(),
         tracker: tracker.clone(),
         grace: limits.grace_period,
+        budget: Arc::clone(&base.budget),
     };
     if let Some(addr) = config.listen.tcp {
         let listener = TcpListener::bind(addr).await?;

@@ -2,6 +2,7 @@
 //! graceful shutdown and reload.
 
 pub mod access;
+pub mod budget;
 pub mod build;
 pub mod engine;
 pub mod http;

@@ -16,6 +16,7 @@ use tokio::io::{AsyncRead, AsyncReadExt, AsyncWrite, AsyncWriteExt};
 use tokio_util::sync::CancellationToken;
 
 use super::access::Secret;
+use super::budget::{Budget, Buffer, MESSAGE_FLOOR};
 use super::engine::{Engine, SharedEngine};
 use super::throttle::Throttle;
 use crate::config::Limits as ConfigLimits;
@@ -31,6 +32,8 @@ use crate::proto::{
 /// Everything a session needs from the daemon.
 #[derive(Clone)]
 pub struct Context {
+    /// The bytes all open messages may hold together.
+    pub budget: Arc<Budget>,
     /// The engine in force (swapped by reloads).
     pub engine: SharedEngine,
     /// The metrics registry.
@@ -45,6 +48,8 @@ pub struct Context {
     pub secret: Option<Arc<Secret>>,
     /// Refused handshakes are logged at most once a second.
     pub refused_log: Arc<Throttle>,
+    /// A spent buffer budget is logged at most once a second.
+    pub budget_log: Arc<Throttle>,
 }
 
 impl Context {
@@ -52,6 +57,7 @@ impl Context {
     /// build, with its own shutdown token.
     pub fn new(engine: SharedEngine, metrics: Arc<Metrics>, limits: ConfigLimits) -> Context {
         Context {
+            budget: Budget::new(limits.max_buffered_bytes, metrics.buffered_bytes_gauge()),
             engine,
             metrics,
             limits,
@@ -59,6 +65,7 @@ impl Context {
             shutdown: CancellationToken::new(),
             secret: None,
             refused_log: Arc::new(Throttle::new(Duration::from_secs(1))),
+            budget_log: Arc::new(Throttle::new(Duration::from_secs(1))),
         }
     }
 
@@ -150,7 +157,9 @@ struct Message {
     /// Most bytes kept: the engine's raw scan limit, never more than the message limit.
     cap: usize,
     recipients: Vec<String>,
-    raw: Vec<u8>,
+    /// The message as assembled for scoring, paid from the daemon's buffer budget; `None`
+    /// between messages.
+    raw: Option<Buffer>,
     body_started: bool,
     enough_sent: bool,
 }
@@ -169,8 +178,8 @@ where
     let mut session = Session {
         state: SessionState::new(ctx.protocol_limits()),
         stream,
-        read: BytesMut::with_capacity(16 * 1024),
-        write: BytesMut::with_capacity(1024),
+        read: BytesMut::with_capacity(READ_BUFFER),
+        write: BytesMut::with_capacity(WRITE_BUFFER),
         message: Message::default(),
         ctx,
     };
@@ -212,6 +221,12 @@ where
                         return self.finish().await;
                     }
                 }
+            }
+            if !self.state.message_open() {
+                // Between messages: a large frame's buffers go back (not while streaming,
+                // where they would only be allocated again for the next chunk).
+                shrink_after_use(&mut self.read, READ_BUFFER);
+                shrink_after_use(&mut self.write, WRITE_BUFFER);
             }
             let stopping = self.ctx.shutdown.is_cancelled();
             if stopping && !self.state.message_open() {
@@ -324,9 +339,12 @@ where
                 let engine = self.ctx.engine.current();
                 let cap = (engine.model().spec().limits.max_raw_bytes as u64)
                     .min(self.ctx.limits.max_message_bytes) as usize;
+                // Room for the separators around the header section beyond the scan cap.
+                let raw = Buffer::new(&self.ctx.budget, cap.saturating_add(4), MESSAGE_FLOOR);
                 self.message = Message {
                     engine: Some(engine),
                     cap,
+                    raw: Some(raw),
                     ..Message::default()
                 };
             }
@@ -342,16 +360,18 @@ where
                 if n > 0 || matches!(accepted.keep, Keep::All) {
                     let room = self.scan_room();
                     let value = value.get(..n).unwrap_or(&value);
-                    append_field(&mut self.message.raw, &name, value, room);
+                    let mut line = Vec::new();
+                    append_field(&mut line, &name, value, room);
+                    self.append(&line).await?;
                 }
             }
             Frame::Chunk { data } => {
                 if !self.message.body_started {
-                    self.message.raw.extend_from_slice(b"\r\n");
+                    self.append(b"\r\n").await?;
                     self.message.body_started = true;
                 }
                 let n = keep(&data).min(self.scan_room());
-                self.message.raw.extend_from_slice(&data[..n]);
+                self.append(&data[..n]).await?;
                 if !self.message.enough_sent && self.scan_room() == 0 {
                     self.message.enough_sent = true;
                     self.send(&Frame::Enough).await?;
@@ -359,7 +379,7 @@ where
             }
             Frame::Seal => {
                 if !self.message.body_started {
-                    self.message.raw.extend_from_slice(b"\r\n");
+                    self.append(b"\r\n").await?;
                 }
                 let mut verdict = self.decide().await;
                 self.message = Message::default();
@@ -429,7 +449,36 @@ where
 
     /// Bytes the message may still grow by.
     fn scan_room(&self) -> usize {
-        self.message.cap.saturating_sub(self.message.raw.len())
+        let len = self.message.raw.as_ref().map_or(0, Buffer::len);
+        self.message.cap.saturating_sub(len)
+    }
+
+    /// Adds `data` to the message within the buffer budget. When the budget cannot pay for
+    /// all of it, the message takes the `MESSAGE_TOO_LARGE` path (PROTOCOL.md §5): what was
+    /// kept is scored, the rest of its content is read and dropped.
+    async fn append(&mut self, data: &[u8]) -> std::io::Result<()> {
+        let Some(raw) = self.message.raw.as_mut() else {
+            return Ok(());
+        };
+        let granted = raw.room_for(data.len());
+        raw.extend(data.get(..granted).unwrap_or(data));
+        if granted < data.len() && self.state.stop_content() {
+            self.ctx.metrics.budget_exhausted();
+            if let Some(held_back) = self.ctx.budget_log.admit(Instant::now()) {
+                tracing::warn!(
+                    limit = self.ctx.budget.limit(),
+                    held_back,
+                    "the buffer budget is spent; a message is decided on part of its content"
+                );
+            }
+            self.fault(
+                FaultCode::MessageTooLarge,
+                false,
+                "the daemon's message memory is in use by other messages; this one is decided on what it has",
+            )
+            .await?;
+        }
+        Ok(())
     }
 
     async fn decide(&mut self) -> Verdict {
@@ -439,7 +488,14 @@ where
             .engine
             .take()
             .unwrap_or_else(|| self.ctx.engine.current());
-        let raw = std::mem::take(&mut self.message.raw);
+        // The buffer's budget share stays with the message until it is reset after the
+        // verdict, so the bytes count for as long as they are scored.
+        let raw = self
+            .message
+            .raw
+            .as_mut()
+            .map(Buffer::take_bytes)
+            .unwrap_or_default();
         let recipients = std::mem::take(&mut self.message.recipients);
         let bytes = raw.len() as u64;
         let started = Instant::now();
@@ -575,6 +631,23 @@ fn wire_edit(edit: &HeaderEdit) -> Edit {
     }
 }
 
+/// The read buffer's usual size; after a larger frame it is given back (see
+/// [`shrink_after_use`]).
+const READ_BUFFER: usize = 16 * 1024;
+/// The write buffer's usual size.
+const WRITE_BUFFER: usize = 1024;
+
+/// Gives back a buffer that grew past 4 times its usual `size` (a large frame came or
+/// went) once what is left in it fits the usual size, so an idle connection holds little
+/// however large its last frame was.
+fn shrink_after_use(buf: &mut BytesMut, size: usize) {
+    if buf.capacity() > size.saturating_mul(4) && buf.len() <= size {
+        let mut fresh = BytesMut::with_capacity(size);
+        fresh.extend_from_slice(buf);
+        *buf = fresh;
+    }
+}
+
 /// How long a refused connection waits for its `HELLO` before being closed.
 pub const BUSY_HELLO_WAIT: Duration = Duration::from_secs(5);
 
@@ -614,7 +687,19 @@ where
 
 #[cfg(test)]
 mod tests {
-    use super::append_field;
+    use super::{BytesMut, READ_BUFFER, append_field, shrink_after_use};
+
+    #[test]
+    fn a_read_buffer_is_given_back_after_a_large_frame() {
+        let mut buf = BytesMut::with_capacity(READ_BUFFER);
+        buf.extend_from_slice(&vec![0u8; 1 << 20]);
+        shrink_after_use(&mut buf, READ_BUFFER);
+        assert!(buf.capacity() >= 1 << 20, "kept while the frame is in it");
+        let _ = buf.split_to((1 << 20) - 10);
+        shrink_after_use(&mut buf, READ_BUFFER);
+        assert!(buf.capacity() <= 4 * READ_BUFFER, "{}", buf.capacity());
+        assert_eq!(buf.len(), 10, "the bytes of the next frame are kept");
+    }
 
     fn field(name: &str, value: &[u8], room: usize) -> Vec<u8> {
         let mut raw = Vec::new();

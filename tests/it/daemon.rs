@@ -1338,6 +1338,92 @@ async fn line_breaks_in_field_names_and_values_cannot_forge_header_fields() {
     assert!(running.stop().await);
 }
 
+/// Issue reproducer, scaled down: 250 connections each holding an 8.4 MB message peaked at
+/// 2.14 GB. Now every open message is paid from one budget (here 4 MiB for 12 connections
+/// holding 1 MiB each at once, then 2 MiB): the budget is never passed, a message that
+/// cannot get more is decided on what it has (MESSAGE_TOO_LARGE, then its verdict), and
+/// the bytes are returned after the verdicts.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn open_messages_share_one_buffer_budget() {
+    const CONNECTIONS: usize = 12;
+    const BUDGET: u64 = 4 << 20;
+    let mut config = loopback();
+    config.limits.max_buffered_bytes = BUDGET;
+    let (running, metrics) = daemon(config).await;
+    let addr = running.tcp.expect("tcp");
+    let line = b"Our quarterly catalogue of garden furniture is out; order before Friday.\r\n";
+    let piece: Vec<u8> = line.iter().copied().cycle().take(60 * 1024).collect();
+    let barrier = Arc::new(std::sync::Barrier::new(CONNECTIONS));
+    let clients: Vec<_> = (0..CONNECTIONS)
+        .map(|i| {
+            let (piece, barrier) = (piece.clone(), Arc::clone(&barrier));
+            tokio::task::spawn_blocking(move || {
+                let mut raw = Raw::hello(addr);
+                raw.open_message();
+                raw.send(&Frame::Field {
+                    name: "Subject".into(),
+                    value: format!("catalogue {i}").into_bytes(),
+                });
+                let stream_mib = |raw: &mut Raw| {
+                    for _ in 0..17 {
+                        raw.send(&Frame::Chunk {
+                            data: piece.clone(),
+                        });
+                    }
+                };
+                stream_mib(&mut raw);
+                // The server has taken in this first MiB before anyone goes on.
+                raw.send(&Frame::Ping { token: 1 });
+                let mut notices = Vec::new();
+                loop {
+                    match raw.next().expect("open") {
+                        Frame::Pong { token: 1 } => break,
+                        Frame::Fault {
+                            code, fatal: false, ..
+                        } => notices.push(code),
+                        Frame::Enough => {}
+                        other => panic!("{other:?}"),
+                    }
+                }
+                barrier.wait();
+                stream_mib(&mut raw);
+                raw.send(&Frame::Seal);
+                let (more, verdict) = notices_and_verdict(&mut raw, 1 << 20);
+                notices.extend(more);
+                (notices, verdict)
+            })
+        })
+        .collect();
+    let mut cut = 0;
+    for client in clients {
+        let (notices, verdict) = client.await.expect("task");
+        assert!(verdict.margin.is_finite(), "scored: {verdict:?}");
+        if notices.contains(&FaultCode::MessageTooLarge) {
+            cut += 1;
+        }
+    }
+    let budget = running.buffer_budget();
+    assert!(
+        budget.peak() <= BUDGET,
+        "peak {} over {BUDGET}",
+        budget.peak()
+    );
+    assert!(
+        budget.peak() > BUDGET / 2,
+        "the budget was used: {}",
+        budget.peak()
+    );
+    assert!(cut >= CONNECTIONS - 4, "only {cut} messages were cut");
+    assert_eq!(budget.held(), 0, "every byte returned after the verdicts");
+    let text = metrics.render();
+    assert!(text.contains("\ntamis_buffered_bytes 0\n"), "{text}");
+    assert!(
+        text.contains(&format!("\ntamis_buffer_budget_exhausted_total {cut}\n")),
+        "{text}"
+    );
+    assert!(running.stop().await);
+}
+
 /// Who may connect over TCP (PROTOCOL.md §3): an allow-list of address ranges, a cap per
 /// peer address and a shared secret in HELLO. Issue 7, item 3: any local user could take
 /// every connection slot.
