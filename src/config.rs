@@ -12,7 +12,10 @@
 //! - **Sizes** are a whole number of bytes (`65536`) or a string with a binary unit:
 //!   `"64 KiB"`, `"10 MiB"`, `"1 GiB"`. `KB`/`MB` are refused because they are ambiguous
 //!   between powers of 1000 and 1024.
-//! - **Addresses** are `"ip:port"` strings; `"off"` turns a listener off.
+//! - **Addresses** are `"ip:port"` strings; `"off"` turns a listener off. **Address
+//!   ranges** (`access.tcp_allow`) are CIDR strings such as `"192.0.2.0/24"`.
+//! - **Secrets** are never written in the file: `access.secret_file` names a file that
+//!   holds one, checked by [`Config::load`] and read at start-up.
 //! - **Paths** are absolute, or relative to the folder of the configuration file (not to
 //!   the daemon's working directory, which a service manager chooses). [`Config::load`]
 //!   makes the file's path absolute first, so every path it returns is absolute.
