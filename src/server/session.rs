@@ -1,18 +1,22 @@
 //! One relay connection: frames in, verdicts out.
 //!
-//! Invariants: one read buffer per connection, advanced only past whole frames; a declared
-//! frame length is checked against the limit before its payload is waited for; the message
-//! being assembled never grows past the scan limit (bytes beyond it are read and dropped);
-//! scoring runs on a blocking thread with the engine the message started with. Every error
-//! in a session ends in that session (logged and counted), never in the listener.
+//! Invariants: one read buffer per connection, advanced only past whole frames, and given
+//! back between messages after a large frame; a declared frame length is checked against
+//! the limit before its payload is waited for; the message being assembled never grows past
+//! the scan limit nor past what the daemon-wide buffer budget lends (bytes beyond are read
+//! and dropped, the message is still scored); one `FIELD` is one header line in it; a
+//! `VERDICT` always fits the client's `max_frame`; `HELLO` must come within the handshake
+//! timeout and `PING` alone never restarts the idle timeout; scoring runs on a blocking
+//! thread with the engine the message started with; every value from the peer is escaped
+//! before it is logged. Every error in a session ends in that session (logged and
+//! counted), never in the listener.
 
 use std::sync::Arc;
 use std::time::Duration;
 
-use tokio::time::Instant;
-
 use bytes::{Buf, BytesMut};
 use tokio::io::{AsyncRead, AsyncReadExt, AsyncWrite, AsyncWriteExt};
+use tokio::time::Instant;
 use tokio_util::sync::CancellationToken;
 
 use super::access::Secret;
@@ -135,17 +139,29 @@ impl Timers {
     /// The earliest deadline and the clock it belongs to.
     fn next(&self, limits: &ConfigLimits, handshake_done: bool) -> (Instant, Timer) {
         let waiting = if handshake_done {
-            (self.active + limits.idle_timeout, Timer::Idle)
+            (later(self.active, limits.idle_timeout), Timer::Idle)
         } else {
-            (self.accepted + limits.handshake_timeout, Timer::Handshake)
+            (
+                later(self.accepted, limits.handshake_timeout),
+                Timer::Handshake,
+            )
         };
         match self.frame_started {
-            Some(started) if started + limits.read_timeout < waiting.0 => {
-                (started + limits.read_timeout, Timer::Frame)
+            Some(started) if later(started, limits.read_timeout) < waiting.0 => {
+                (later(started, limits.read_timeout), Timer::Frame)
             }
             _ => waiting,
         }
     }
+}
+
+/// `at + wait`, or about thirty years on when a configured duration is too long for the
+/// clock (as `tokio::time::timeout` treats one), never a panic.
+fn later(at: Instant, wait: Duration) -> Instant {
+    const FAR: Duration = Duration::from_secs(86_400 * 365 * 30);
+    at.checked_add(wait)
+        .or_else(|| at.checked_add(FAR))
+        .unwrap_or(at)
 }
 
 /// The message being assembled.
@@ -275,12 +291,13 @@ where
     async fn fault(&mut self, code: FaultCode, fatal: bool, text: &str) -> std::io::Result<()> {
         self.ctx.metrics.protocol_error(code.name());
         tracing::debug!(code = code.name(), fatal, text = %safe(text), "fault");
-        let mut text = text.to_string();
-        // A fault must fit the smallest frame a client may announce.
-        text.truncate(1024);
-        while !text.is_char_boundary(text.len()) {
-            text.pop();
+        // A fault must fit the smallest frame a client may announce; cut at a character
+        // boundary (`String::truncate` would panic inside a character).
+        let mut cut = text.len().min(1024);
+        while !text.is_char_boundary(cut) {
+            cut -= 1;
         }
+        let text = text.get(..cut).unwrap_or_default().to_string();
         self.send(&Frame::Fault { code, fatal, text }).await
     }
 
@@ -687,7 +704,17 @@ where
 
 #[cfg(test)]
 mod tests {
-    use super::{BytesMut, READ_BUFFER, append_field, shrink_after_use};
+    use super::{BytesMut, Duration, Instant, READ_BUFFER, append_field, later, shrink_after_use};
+
+    #[test]
+    fn a_huge_timeout_never_overflows_the_clock() {
+        let now = Instant::now();
+        assert!(later(now, Duration::MAX) > now);
+        assert_eq!(
+            later(now, Duration::from_secs(5)),
+            now + Duration::from_secs(5)
+        );
+    }
 
     #[test]
     fn a_read_buffer_is_given_back_after_a_large_frame() {
