@@ -12,7 +12,10 @@
 //! - **Sizes** are a whole number of bytes (`65536`) or a string with a binary unit:
 //!   `"64 KiB"`, `"10 MiB"`, `"1 GiB"`. `KB`/`MB` are refused because they are ambiguous
 //!   between powers of 1000 and 1024.
-//! - **Addresses** are `"ip:port"` strings; `"off"` turns a listener off.
+//! - **Addresses** are `"ip:port"` strings; `"off"` turns a listener off. **Address
+//!   ranges** (`access.tcp_allow`) are CIDR strings such as `"192.0.2.0/24"`.
+//! - **Secrets** are never written in the file: `access.secret_file` names a file that
+//!   holds one, checked by [`Config::load`] and read at start-up.
 //! - **Paths** are absolute, or relative to the folder of the configuration file (not to
 //!   the daemon's working directory, which a service manager chooses). [`Config::load`]
 //!   makes the file's path absolute first, so every path it returns is absolute.
@@ -31,6 +34,8 @@ use serde::de::Error as _;
 use serde::{Deserialize, Deserializer, Serialize, Serializer};
 
 use crate::policy::Policy;
+pub use crate::server::access::Cidr;
+use crate::server::access::Secret;
 
 /// Default TCP listener: loopback only.
 pub const DEFAULT_TCP: SocketAddr = SocketAddr::new(IpAddr::V4(Ipv4Addr::LOCALHOST), 7357);
@@ -62,6 +67,9 @@ pub struct Config {
     /// Where the relay protocol is served.
     #[serde(default, deserialize_with = "checked")]
     pub listen: Listeners,
+    /// Who may connect over TCP.
+    #[serde(default, deserialize_with = "checked")]
+    pub access: Access,
     /// Resource limits per connection and message.
     #[serde(default, deserialize_with = "checked")]
     pub limits: Limits,
@@ -92,6 +100,7 @@ impl Default for Config {
             metrics: default_metrics(),
             on_failure: FailureMode::default(),
             listen: Listeners::default(),
+            access: Access::default(),
             limits: Limits::default(),
             model: ModelSource::default(),
             policy: Policy::default(),
@@ -131,6 +140,7 @@ impl Config {
         let mut config = parse(&text, &path.display().to_string())?;
         config.resolve_paths(absolute.parent().unwrap_or(Path::new("")));
         config.validate_as(&path.display().to_string())?;
+        config.check_files(&path.display().to_string())?;
         Ok(config)
     }
 
@@ -161,6 +171,24 @@ impl Config {
         })
     }
 
+    /// Checks the files the configuration names and the daemon reads at start-up (the
+    /// shared secret), so `tamis config check` and a start fail the same way. Parsing text
+    /// alone ([`Config::from_toml_str`]) does not look at the file system.
+    pub fn check_files(&self, file: &str) -> Result<(), ConfigError> {
+        if let Some(path) = &self.access.secret_file {
+            Secret::read(path).map_err(|e| {
+                let (message, hint) = split_hint(&e.to_string());
+                ConfigError::Invalid {
+                    file: file.to_string(),
+                    location: None,
+                    message: format!("access.secret_file: {message}"),
+                    hint,
+                }
+            })?;
+        }
+        Ok(())
+    }
+
     fn validate_as(&self, file: &str) -> Result<(), ConfigError> {
         let located = |message: String| {
             let (message, hint) = split_hint(&message);
@@ -173,6 +201,12 @@ impl Config {
         };
         self.listen.check().map_err(located)?;
         self.limits.check().map_err(located)?;
+        self.access.check().map_err(located)?;
+        if self.listen.tcp.is_some() && self.access.tcp_allow.is_empty() {
+            return Err(located(
+                "access.tcp_allow is empty, so no TCP peer could connect; list the relays' address ranges, or set listen.tcp = \"off\"".to_string(),
+            ));
+        }
         self.headers.check().map_err(located)?;
         if let ModelSource::File(path) = &self.model
             && path.as_os_str().is_empty()
@@ -201,6 +235,9 @@ impl Config {
             resolve(&mut unix.path);
         }
         if let ModelSource::File(path) = &mut self.model {
+            resolve(path);
+        }
+        if let Some(path) = &mut self.access.secret_file {
             resolve(path);
         }
     }
@@ -284,6 +321,43 @@ impl Check for UnixSocket {
     }
 }
 
+/// Who may hold a TCP connection (`proto/PROTOCOL.md` §3). The Unix socket relies on its
+/// file permissions (`listen.unix.mode`) instead.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct Access {
+    /// Peer address ranges allowed to connect over TCP; others get `FAULT DENIED`. Default
+    /// loopback only (`127.0.0.0/8`, `::1/128`).
+    pub tcp_allow: Vec<Cidr>,
+    /// A file holding a shared secret that TCP clients must present in `HELLO`; `None`
+    /// asks for none. Read at start-up; never written into the configuration itself.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub secret_file: Option<PathBuf>,
+}
+
+impl Default for Access {
+    fn default() -> Access {
+        Access {
+            tcp_allow: Cidr::loopback(),
+            secret_file: None,
+        }
+    }
+}
+
+impl Check for Access {
+    fn check(&self) -> Result<(), String> {
+        if let Some(path) = &self.secret_file
+            && path.as_os_str().is_empty()
+        {
+            return Err(
+                "access.secret_file is empty; give the secret file's path, or remove the key to ask for no secret"
+                    .to_string(),
+            );
+        }
+        Ok(())
+    }
+}
+
 /// Resource limits. Every value must be greater than zero.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]
@@ -291,12 +365,23 @@ pub struct Limits {
     /// Connections served at once; further ones get `FAULT BUSY`.
     #[serde(deserialize_with = "positive_u32")]
     pub max_connections: u32,
+    /// TCP connections served at once from one peer address; `None` (the default) allows
+    /// up to `max_connections`. Further ones get `FAULT BUSY`.
+    #[serde(
+        skip_serializing_if = "Option::is_none",
+        deserialize_with = "optional_positive_u32"
+    )]
+    pub max_connections_per_peer: Option<u32>,
     /// Largest frame accepted, in bytes (announced in `WELCOME`); at least 4096.
     #[serde(with = "size_u32")]
     pub max_frame_bytes: u32,
     /// Largest message scanned (header fields and body), in bytes.
     #[serde(with = "size_u64")]
     pub max_message_bytes: u64,
+    /// Bytes all open messages may hold together; a message that cannot get more is
+    /// decided on what it has (`MESSAGE_TOO_LARGE`).
+    #[serde(with = "size_u64")]
+    pub max_buffered_bytes: u64,
     /// Most header fields kept per message.
     #[serde(deserialize_with = "positive_u32")]
     pub max_fields: u32,
@@ -306,7 +391,11 @@ pub struct Limits {
     /// Longest header field value kept, in bytes.
     #[serde(with = "size_u32")]
     pub max_field_bytes: u32,
-    /// Close a connection that sends no frame for this long.
+    /// Close a connection that has not completed its `HELLO` this long after it was
+    /// accepted.
+    #[serde(with = "duration")]
+    pub handshake_timeout: Duration,
+    /// Close a connection that sends no frame but `PING` for this long.
     #[serde(with = "duration")]
     pub idle_timeout: Duration,
     /// Close a connection that takes longer than this to finish a frame it started.
@@ -322,11 +411,14 @@ impl Default for Limits {
     fn default() -> Limits {
         Limits {
             max_connections: 256,
+            max_connections_per_peer: None,
             max_frame_bytes: 65_536,
             max_message_bytes: 10 * 1024 * 1024,
+            max_buffered_bytes: 256 * 1024 * 1024,
             max_fields: 1000,
             max_recipients: 1000,
             max_field_bytes: 32 * 1024,
+            handshake_timeout: Duration::from_secs(10),
             idle_timeout: Duration::from_secs(300),
             read_timeout: Duration::from_secs(30),
             grace_period: Duration::from_secs(10),
@@ -340,6 +432,7 @@ impl Check for Limits {
             ("max_connections", u64::from(self.max_connections)),
             ("max_frame_bytes", u64::from(self.max_frame_bytes)),
             ("max_message_bytes", self.max_message_bytes),
+            ("max_buffered_bytes", self.max_buffered_bytes),
             ("max_fields", u64::from(self.max_fields)),
             ("max_recipients", u64::from(self.max_recipients)),
             ("max_field_bytes", u64::from(self.max_field_bytes)),
@@ -350,6 +443,7 @@ impl Check for Limits {
             }
         }
         let durations = [
+            ("handshake_timeout", self.handshake_timeout),
             ("idle_timeout", self.idle_timeout),
             ("read_timeout", self.read_timeout),
             ("grace_period", self.grace_period),
@@ -360,6 +454,14 @@ impl Check for Limits {
                     "limits.{key} is zero; give a positive duration such as \"30s\""
                 ));
             }
+        }
+        if let Some(per_peer) = self.max_connections_per_peer
+            && per_peer > self.max_connections
+        {
+            return Err(format!(
+                "limits.max_connections_per_peer ({per_peer}) exceeds limits.max_connections ({}); lower it, or remove it to allow one peer every connection",
+                self.max_connections
+            ));
         }
         if self.max_frame_bytes < MIN_FRAME_BYTES {
             return Err(format!(
@@ -807,6 +909,13 @@ fn positive_u32<'de, D: Deserializer<'de>>(deserializer: D) -> Result<u32, D::Er
         ));
     }
     Ok(value)
+}
+
+/// An optional positive integer, checked where it is read.
+fn optional_positive_u32<'de, D: Deserializer<'de>>(
+    deserializer: D,
+) -> Result<Option<u32>, D::Error> {
+    positive_u32(deserializer).map(Some)
 }
 
 /// The subject prefix: a string, empty meaning none, checked where it is read.

@@ -17,6 +17,7 @@
 //!
 //! [`fsio`] is the one way files are replaced (temporary file, fsync, rename) and the
 //! bounded, non-blocking way model and configuration files are read.
+//! [`logsafe`] escapes every value that comes from a peer before it reaches a log line.
 //!
 //! [`demo`] generates the invented demonstration corpus used by examples and benchmarks.
 #![forbid(unsafe_code)]
@@ -28,6 +29,7 @@ pub mod demo;
 pub mod features;
 pub mod fsio;
 pub mod label;
+pub mod logsafe;
 pub mod mail;
 pub mod metrics;
 pub mod model;

@@ -14,6 +14,9 @@
 //! | `tamis_reloads_total` | counter | `outcome` |
 //! | `tamis_model_info` | gauge (always 1) | `version`, `trained_at`, `feature_spec` |
 //! | `tamis_unscanned_total` | counter | `reason` |
+//! | `tamis_accept_errors_total` | counter | |
+//! | `tamis_buffered_bytes` | gauge | |
+//! | `tamis_buffer_budget_exhausted_total` | counter | |
 //!
 //! Invariant: every label takes values from a bounded set. Each distinct label value is
 //! a separate time series that the Prometheus server keeps in memory and on disk for as
@@ -44,7 +47,7 @@ pub const OTHER: &str = "other";
 
 /// The `kind` values of `tamis_protocol_errors_total`: the `FAULT` names of
 /// `proto/PROTOCOL.md` §5, lower-cased.
-pub const PROTOCOL_ERROR_KINDS: [&str; 11] = [
+pub const PROTOCOL_ERROR_KINDS: [&str; 14] = [
     "malformed",
     "unknown_kind",
     "out_of_order",
@@ -56,6 +59,9 @@ pub const PROTOCOL_ERROR_KINDS: [&str; 11] = [
     "version",
     "busy",
     "shutting_down",
+    "bad_address",
+    "verdict_too_large",
+    "denied",
 ];
 
 /// Bucket bounds of `tamis_margin`: -3 to 3 in steps of 0.25, which resolves the usual
@@ -117,6 +123,9 @@ pub struct Metrics {
     reloads: IntCounterVec,
     model_info: IntGaugeVec,
     unscanned: IntCounterVec,
+    accept_errors: IntCounter,
+    buffered_bytes: IntGauge,
+    budget_exhausted: IntCounter,
 }
 
 /// Keeps `tamis_connections_open` one higher while it lives.
@@ -234,6 +243,30 @@ impl Metrics {
                 &["reason"],
             ),
         )?;
+        let accept_errors = register(
+            &registry,
+            "tamis_accept_errors_total",
+            IntCounter::new(
+                "tamis_accept_errors_total",
+                "Relay connections the listeners failed to accept (out of descriptors, for instance).",
+            ),
+        )?;
+        let buffered_bytes = register(
+            &registry,
+            "tamis_buffered_bytes",
+            IntGauge::new(
+                "tamis_buffered_bytes",
+                "Bytes held by messages being assembled, against limits.max_buffered_bytes.",
+            ),
+        )?;
+        let budget_exhausted = register(
+            &registry,
+            "tamis_buffer_budget_exhausted_total",
+            IntCounter::new(
+                "tamis_buffer_budget_exhausted_total",
+                "Messages decided on part of their content because the buffer budget was spent.",
+            ),
+        )?;
         let metrics = Metrics {
             registry,
             domains: RwLock::new(BTreeSet::new()),
@@ -246,6 +279,9 @@ impl Metrics {
             reloads,
             model_info,
             unscanned,
+            accept_errors,
+            buffered_bytes,
+            budget_exhausted,
         };
         metrics.set_domains(domains);
         for kind in PROTOCOL_ERROR_KINDS.iter().chain([&OTHER]) {
@@ -378,6 +414,21 @@ impl Metrics {
         if let Some(c) = labelled(&self.protocol_errors, &[label]) {
             c.inc();
         }
+    }
+
+    /// Counts a connection a listener failed to accept.
+    pub fn accept_error(&self) {
+        self.accept_errors.inc();
+    }
+
+    /// The gauge of bytes held by messages being assembled, for the buffer budget to move.
+    pub fn buffered_bytes_gauge(&self) -> IntGauge {
+        self.buffered_bytes.clone()
+    }
+
+    /// Counts a message cut short because the buffer budget was spent.
+    pub fn budget_exhausted(&self) {
+        self.budget_exhausted.inc();
     }
 
     /// Counts a reload and its outcome.

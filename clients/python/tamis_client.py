@@ -91,6 +91,8 @@ _LAYOUTS: dict[int, list[tuple[str, str]]] = {
     FAULT: [("code", "u16"), ("fatal", "u8"), ("text", "str")],
     SERVER_BYE: [],
 }
+#: §3: HELLO may end with an optional ``secret: bytes`` (the shared secret).
+_OPTIONAL_TAIL: dict[int, tuple[str, str]] = {HELLO: ("secret", "bytes")}
 
 # --------------------------------------------------------------------------
 # FAULT codes (§5)
@@ -107,13 +109,17 @@ IDLE = 8
 VERSION = 9
 BUSY = 10
 SHUTTING_DOWN = 11
+BAD_ADDRESS = 12
+VERDICT_TOO_LARGE = 13
+DENIED = 14
 
 FAULT_NAMES = {
     MALFORMED: "MALFORMED", UNKNOWN_KIND: "UNKNOWN_KIND",
     OUT_OF_ORDER: "OUT_OF_ORDER", FRAME_TOO_LARGE: "FRAME_TOO_LARGE",
     MESSAGE_TOO_LARGE: "MESSAGE_TOO_LARGE", TOO_MANY: "TOO_MANY",
     FIELD_TOO_LARGE: "FIELD_TOO_LARGE", IDLE: "IDLE", VERSION: "VERSION",
-    BUSY: "BUSY", SHUTTING_DOWN: "SHUTTING_DOWN",
+    BUSY: "BUSY", SHUTTING_DOWN: "SHUTTING_DOWN", BAD_ADDRESS: "BAD_ADDRESS",
+    VERDICT_TOO_LARGE: "VERDICT_TOO_LARGE", DENIED: "DENIED",
 }
 
 # Actions and edit ops (§4)
@@ -345,9 +351,13 @@ def encode_payload(kind: int, fields: dict[str, Any]) -> bytes:
     layout = _LAYOUTS.get(kind)
     if layout is None:
         raise FrameError(UNKNOWN_KIND, f"kind 0x{kind:02x} is not in §2")
-    extra = set(fields) - {n for n, _ in layout}
+    tail = _OPTIONAL_TAIL.get(kind)
+    names = {n for n, _ in layout} | ({tail[0]} if tail else set())
+    extra = set(fields) - names
     _need(not extra, f"{KIND_NAMES[kind]}: unexpected field(s) {sorted(extra)}")
     out = b"".join(_ENCODERS[t](fields[n], f"{KIND_NAMES[kind]}.{n}") for n, t in layout)
+    if tail and fields.get(tail[0]) is not None:
+        out += _ENCODERS[tail[1]](fields[tail[0]], f"{KIND_NAMES[kind]}.{tail[0]}")
     _check_values(kind, fields)
     return out
 
@@ -362,6 +372,9 @@ def decode_payload(kind: int, payload: bytes) -> dict[str, Any]:
         if layout is None:
             raise FrameError(UNKNOWN_KIND, f"kind 0x{kind:02x} is not in §2")
         fields = {n: getattr(r, t)(f"{KIND_NAMES[kind]}.{n}") for n, t in layout}
+        tail = _OPTIONAL_TAIL.get(kind)
+        if tail and r.pos < len(r.buf):
+            fields[tail[0]] = getattr(r, tail[1])(f"{KIND_NAMES[kind]}.{tail[0]}")
     r.finish()
     _check_values(kind, fields)
     return fields
@@ -435,8 +448,21 @@ def decode_frames(buf: bytes, direction: str | None = None) -> list[Frame]:
 # Convenience constructors for the client frames (§2).
 
 def hello_frame(version: int = PROTOCOL_VERSION, max_frame: int = DEFAULT_MAX_FRAME,
-                client: str = CLIENT_NAME) -> Frame:
-    return Frame(HELLO, {"version": version, "max_frame": max_frame, "client": client})
+                client: str = CLIENT_NAME, secret: bytes | None = None) -> Frame:
+    fields: dict[str, Any] = {"version": version, "max_frame": max_frame, "client": client}
+    if secret is not None:
+        fields["secret"] = bytes(secret)      # §3: optional trailing field
+    return Frame(HELLO, fields)
+
+
+def read_secret_file(path: str) -> bytes:
+    """§3: the shared secret is the file's content without one trailing
+    LF or CRLF."""
+    with open(path, "rb") as fh:
+        data = fh.read(4096)
+    if data.endswith(b"\r\n"):
+        return data[:-2]
+    return data[:-1] if data.endswith(b"\n") else data
 
 
 def peer_frame(address: str, port: int, greeting: str) -> Frame:
@@ -495,7 +521,10 @@ class Verdict:
     verdict_id: str
     margin: float                       # NaN when not scored
     probability: float                  # NaN when uncalibrated / not scored
-    actions: dict[str, str]             # recipient -> accept|tag|quarantine|defer
+    #: recipient -> accept|tag|quarantine|defer.  After Client.seal() the keys
+    #: are the recipients as we sent them, matched by position (§4: listed in
+    #: RECIPIENT order; a refused address is listed empty).
+    actions: dict[str, str]
     edits: list[Edit] = dc_field(default_factory=list)
     reasons: list[str] = dc_field(default_factory=list)
     #: (address, action name) in RECIPIENT order, duplicates kept.
@@ -505,8 +534,9 @@ class Verdict:
     #: True when the server sent ENOUGH (or MESSAGE_TOO_LARGE) and we skipped
     #: the remaining CHUNKs.
     body_cut_short: bool = False
-    #: recipients we sent that the VERDICT does not list (e.g. ignored after
-    #: TOO_MANY): the caller must decide for them (see README, questions).
+    #: recipients we sent that the VERDICT does not list (ignored after
+    #: TOO_MANY, always the last ones sent): §4 says to send the message again
+    #: for them, or answer them with a temporary failure.
     unlisted: list[str] = dc_field(default_factory=list)
 
     @property
@@ -635,12 +665,14 @@ class Client:
 
     def __init__(self, addr: str, *, timeout: float | None = 60.0,
                  max_frame: int = DEFAULT_MAX_FRAME, client_name: str = CLIENT_NAME,
-                 sock: socket.socket | None = None):
+                 sock: socket.socket | None = None, secret: bytes | None = None):
         if max_frame < MIN_MAX_FRAME:
             raise ValueError(f"max_frame must be >= {MIN_MAX_FRAME} (§2)")
         self.addr = addr
         self.max_frame = max_frame
         self.client_name = client_name
+        #: §3: the shared secret sent in HELLO (None: none is sent)
+        self.secret = secret
         self.sock = sock if sock is not None else _open_socket(addr, timeout)
         if sock is not None:
             self.sock.settimeout(timeout)
@@ -803,7 +835,7 @@ class Client:
     def hello(self, version: int = PROTOCOL_VERSION) -> Frame:
         """Send HELLO and wait for WELCOME (§3).  Returns the WELCOME frame."""
         self._require("start", what="HELLO")
-        self.send(hello_frame(version, self.max_frame, self.client_name))
+        self.send(hello_frame(version, self.max_frame, self.client_name, self.secret))
         fr = self._expect(WELCOME)
         self.server_version = fr["version"]
         self.server_max_frame = fr["max_frame"]
@@ -879,8 +911,14 @@ class Client:
         v = Verdict.from_frame(fr)
         v.faults = list(self._faults)
         v.body_cut_short = self._enough
-        listed = {a for a, _ in v.recipients}
-        v.unlisted = [r for r in getattr(self, "_recipients", []) if r not in listed]
+        # §4: the VERDICT lists the kept recipients in RECIPIENT order, a prefix
+        # of those sent; a refused address (BAD_ADDRESS) is listed empty.  So
+        # recipients are matched by position, not by address.
+        sent = list(getattr(self, "_recipients", []))
+        v.actions = {}
+        for i, (address, action) in enumerate(v.recipients):
+            v.actions[sent[i] if i < len(sent) else address] = action
+        v.unlisted = sent[len(v.recipients):]
         self._end_message()
         return v
 
@@ -982,6 +1020,8 @@ def main(argv: list[str] | None = None) -> int:
                     help="send PEER before every message")
     ap.add_argument("--chunk-size", type=int, default=16384)
     ap.add_argument("--timeout", type=float, default=60.0)
+    ap.add_argument("--secret-file", metavar="PATH",
+                    help="file holding the shared secret to present in HELLO (§3)")
     ap.add_argument("files", nargs="+", metavar="FILE")
     args = ap.parse_args(argv)
 
@@ -991,6 +1031,7 @@ def main(argv: list[str] | None = None) -> int:
         ip, _, port = ip.rpartition(":")
         peer = (ip.strip("[]"), int(port), rest)
 
+    secret = read_secret_file(args.secret_file) if args.secret_file else None
     status = 0
     client: Client | None = None
     for path in args.files:
@@ -998,7 +1039,7 @@ def main(argv: list[str] | None = None) -> int:
             with open(path, "rb") as fh:
                 raw = fh.read()
             if client is None or client.state == "closed":
-                client = Client(args.connect, timeout=args.timeout)
+                client = Client(args.connect, timeout=args.timeout, secret=secret)
                 client.hello()
             if peer:
                 client.peer(*peer)

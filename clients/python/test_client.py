@@ -114,7 +114,7 @@ class FramingTests(unittest.TestCase):
     def test_s1_undefined_values_are_malformed(self):
         # §1: "an action or edit op not in §4, a FAULT code not in §5, a fatal
         # byte other than 0 or 1" is MALFORMED.
-        bad = [hx("00000006 45 000c 00 0000"),                 # FAULT code 12
+        bad = [hx("00000006 45 0063 00 0000"),                 # FAULT code 99
                hx("00000006 45 0000 00 0000"),                 # FAULT code 0
                hx("00000006 45 0001 02 0000")]                 # fatal = 2
         nan = "7ff8000000000000"
@@ -151,6 +151,24 @@ class ClientFrameTests(unittest.TestCase):
         # §2 HELLO: version u16, max_frame u32, client str.
         self.roundtrip(tc.hello_frame(1, 65536, "r1"),
                        hx("0000000b 01 0001 00010000 0002 7231"))
+
+    def test_s3_hello_with_secret(self):
+        # §3: HELLO may end with ``secret: bytes``; without it the bytes are
+        # those of a plain HELLO.
+        self.roundtrip(tc.hello_frame(1, 65536, "r1", b"k3y!"),
+                       hx("00000013 01 0001 00010000 0002 7231 00000004") + b"k3y!")
+        self.roundtrip(tc.hello_frame(1, 65536, "r1"),
+                       hx("0000000b 01 0001 00010000 0002 7231"))
+
+    def test_s3_secret_file_drops_one_line_end(self):
+        import tempfile
+        with tempfile.TemporaryDirectory() as d:
+            path = os.path.join(d, "s")
+            for content, want in ((b"abc\n", b"abc"), (b"abc\r\n", b"abc"),
+                                  (b"abc", b"abc"), (b"abc\n\n", b"abc\n")):
+                with open(path, "wb") as fh:
+                    fh.write(content)
+                self.assertEqual(tc.read_secret_file(path), want)
 
     def test_s2_peer(self):
         # §2 PEER: address str, port u16, greeting str.
@@ -401,6 +419,28 @@ class ClientTests(unittest.TestCase):
         self.assertEqual(v.actions, {"b@example.test": "accept"})
         self.assertEqual([f[0] for f in v.faults], [tc.TOO_MANY])
 
+    def test_s4_2_unlisted_recipients_are_the_last_ones_sent(self):
+        # §4.2: past the limits the server keeps a prefix of the recipients
+        # (TOO_MANY); the rest must be sent again or deferred by the caller.
+        def script(s):
+            s.welcome()
+            s.read()                                  # SENDER
+            for _ in range(3):
+                s.read()                              # RECIPIENT x3
+            s.write(tc.FAULT, code=tc.TOO_MANY, fatal=0, text="too many")
+            while s.read().kind != tc.SEAL:
+                pass
+            s.write(tc.VERDICT, **verdict_fields(["a@example.test", ""], 2))
+
+        srv = FakeServer(script)
+        c = tc.Client("test", sock=srv.client_sock, timeout=5)
+        c.hello()
+        v = c.scan("s@example.org", ["a@example.test", "b c@example.test", "d@example.test"],
+                   b"A: b\r\n\r\nbody\r\n")
+        self.assertEqual(v.actions, {"a@example.test": "quarantine",
+                                     "b c@example.test": "quarantine"})
+        self.assertEqual(v.unlisted, ["d@example.test"])
+
     def test_s5_fatal_fault_raises(self):
         # §5: fatal FAULT -> open message not scanned; client raises.
         def script(s):
@@ -638,6 +678,18 @@ class VectorConversationTests(unittest.TestCase):
         self.fatal("fault_version.txt", tc.VERSION, lambda c: c.hello(version=0),
                    client_name="relay-test/0")
 
+    def test_vec_handshake_secret(self):
+        # vectors/handshake_secret.txt: HELLO carries the shared secret (§3).
+        srv = VectorServer("handshake_secret.txt")
+        c = srv.client(secret=b"5f2b6c0e9d8a7b1c4e3f2a1b0c9d8e7f")
+        c.hello()
+        srv.finish(self)
+        c.close()
+
+    def test_vec_fault_denied(self):
+        # vectors/fault_denied.txt: no secret where one is required (§3).
+        self.fatal("fault_denied.txt", tc.DENIED, lambda c: c.hello())
+
     def test_vec_fault_busy(self):
         # vectors/fault_busy.txt: FAULT BUSY instead of WELCOME (§3).
         self.fatal("fault_busy.txt", tc.BUSY, lambda c: c.hello())
@@ -648,6 +700,34 @@ class VectorConversationTests(unittest.TestCase):
             c.hello()
             c._expect(tc.PONG)       # wait for the server's next frame
         self.fatal("fault_idle.txt", tc.IDLE, act)
+
+    def test_vec_bad_address(self):
+        # vectors/bad_address.txt: a refused RECIPIENT is listed empty, in its
+        # place (§4.1); the client maps the verdict to what it sent by position.
+        srv = VectorServer("bad_address.txt")
+        c = srv.client()
+        c.hello()
+        v = c.scan("alice@example.org", ["bob@example.net", "carol at example.net"],
+                   b"Subject: Minutes\r\n\r\nSee attached.\r\n")
+        srv.finish(self)
+        self.assertEqual(v.recipients, [("bob@example.net", "accept"), ("", "accept")])
+        self.assertEqual(v.actions, {"bob@example.net": "accept",
+                                     "carol at example.net": "accept"})
+        self.assertEqual([f[1] for f in v.faults], ["BAD_ADDRESS"])
+        self.assertEqual(v.unlisted, [])
+        c.close()
+
+    def test_vec_fault_verdict_too_large(self):
+        # vectors/fault_verdict_too_large.txt: a fatal FAULT instead of the
+        # VERDICT (§4.2): the open message is not scanned (§5).
+        srv = VectorServer("fault_verdict_too_large.txt")
+        c = srv.client(max_frame=4096)
+        c.hello()
+        with self.assertRaises(tc.FatalFault) as cm:
+            c.scan("alice@example.org", ["bob@example.net"], b"")
+        self.assertEqual(cm.exception.code, tc.VERDICT_TOO_LARGE)
+        self.assertTrue(cm.exception.message_open)
+        srv.finish(self)
 
     def test_vec_fault_shutting_down(self):
         # vectors/fault_shutting_down.txt: SENDER refused (§8); the open

@@ -82,6 +82,16 @@ const CLIENT_MAX_FRAME: u32 = 1 << 20;
 impl Client {
     /// Connects to `addr` — `unix:/path/to/socket` or `host:port` — and shakes hands.
     pub fn connect(addr: &str, timeout: Duration) -> Result<Client, ClientError> {
+        Client::connect_with_secret(addr, timeout, None)
+    }
+
+    /// Connects as [`Client::connect`] does, presenting `secret` in `HELLO` (a daemon
+    /// configured with `access.secret_file` refuses TCP clients without it).
+    pub fn connect_with_secret(
+        addr: &str,
+        timeout: Duration,
+        secret: Option<&[u8]>,
+    ) -> Result<Client, ClientError> {
         let stream = match addr.strip_prefix("unix:") {
             Some(path) => {
                 let s = UnixStream::connect(path)?;
@@ -105,6 +115,7 @@ impl Client {
             version: PROTOCOL_VERSION,
             max_frame: CLIENT_MAX_FRAME,
             client: format!("tamis-check {}", env!("CARGO_PKG_VERSION")),
+            secret: secret.map(<[u8]>::to_vec),
         })?;
         client.flush()?;
         match client.receive()? {

@@ -36,11 +36,18 @@ pub enum FaultCode {
     Busy = 10,
     /// The server is stopping and takes no new message.
     ShuttingDown = 11,
+    /// A `SENDER` or `RECIPIENT` that is not an RFC 5321 address (not fatal).
+    BadAddress = 12,
+    /// The `VERDICT` could not be made to fit the client's `max_frame`.
+    VerdictTooLarge = 13,
+    /// The client may not connect: its address is not allowed, or its `HELLO` lacks the
+    /// shared secret or carries a wrong one.
+    Denied = 14,
 }
 
 impl FaultCode {
     /// Every code, in wire order; handy for exhaustive tests and strategies.
-    pub const ALL: [FaultCode; 11] = [
+    pub const ALL: [FaultCode; 14] = [
         FaultCode::Malformed,
         FaultCode::UnknownKind,
         FaultCode::OutOfOrder,
@@ -52,6 +59,9 @@ impl FaultCode {
         FaultCode::Version,
         FaultCode::Busy,
         FaultCode::ShuttingDown,
+        FaultCode::BadAddress,
+        FaultCode::VerdictTooLarge,
+        FaultCode::Denied,
     ];
 
     /// The wire value.
@@ -68,7 +78,10 @@ impl FaultCode {
     pub fn is_fatal(self) -> bool {
         !matches!(
             self,
-            FaultCode::MessageTooLarge | FaultCode::TooMany | FaultCode::FieldTooLarge
+            FaultCode::MessageTooLarge
+                | FaultCode::TooMany
+                | FaultCode::FieldTooLarge
+                | FaultCode::BadAddress
         )
     }
 
@@ -86,6 +99,9 @@ impl FaultCode {
             FaultCode::Version => "VERSION",
             FaultCode::Busy => "BUSY",
             FaultCode::ShuttingDown => "SHUTTING_DOWN",
+            FaultCode::BadAddress => "BAD_ADDRESS",
+            FaultCode::VerdictTooLarge => "VERDICT_TOO_LARGE",
+            FaultCode::Denied => "DENIED",
         }
     }
 }

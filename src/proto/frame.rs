@@ -7,6 +7,7 @@
 //! consume the payload exactly.
 
 use bytes::{BufMut, BytesMut};
+use nom::combinator::opt;
 use nom::error::{ErrorKind, ParseError};
 use nom::multi::{length_count, length_data};
 use nom::number::complete::{be_f64, be_u8, be_u16, be_u32, be_u64};
@@ -65,6 +66,9 @@ pub enum Frame {
         max_frame: u32,
         /// Free-form client name.
         client: String,
+        /// The shared secret, when the client presents one (an optional trailing `bytes`,
+        /// PROTOCOL.md §3).
+        secret: Option<Vec<u8>>,
     },
     /// `PEER` (0x02): the SMTP client of the incoming connection.
     Peer {
@@ -225,11 +229,12 @@ pub fn parse_frame(buf: &[u8], max_frame: u32) -> Result<Option<(Frame, usize)>,
 /// Parses the payload of a frame of a known `kind`; on failure, the payload offset and why.
 fn parse_payload(kind: u8, payload: &[u8]) -> Result<Frame, (usize, Problem)> {
     let result = match kind {
-        kind::HELLO => (be_u16, be_u32, parse_str)
-            .map(|(version, max_frame, client)| Frame::Hello {
+        kind::HELLO => (be_u16, be_u32, parse_str, opt(parse_bytes))
+            .map(|(version, max_frame, client, secret)| Frame::Hello {
                 version,
                 max_frame,
                 client,
+                secret,
             })
             .parse_complete(payload),
         kind::PEER => (parse_str, be_u16, parse_str)
@@ -414,10 +419,14 @@ fn encode_unchecked(frame: &Frame, max_frame: u32, dst: &mut BytesMut) -> Result
             version,
             max_frame,
             client,
+            secret,
         } => {
             w.dst.put_u16(*version);
             w.dst.put_u32(*max_frame);
             w.str("client", client)?;
+            if let Some(secret) = secret {
+                w.bytes("secret", secret)?;
+            }
         }
         Frame::Peer {
             address,

@@ -5,8 +5,10 @@
 //! per-message counters are reset by `SENDER` and after `SEAL` or `DROP`; a non-fatal condition
 //! is never an error but part of [`Accepted`], so the caller keeps reading.
 
+use super::address::{self, Role};
 use super::error::{FaultCode, Phase, ProtoError};
 use super::frame::Frame;
+use super::verdict::{VERDICT_RESERVE, recipient_wire_len};
 
 /// The protocol version this crate speaks.
 pub const PROTOCOL_VERSION: u16 = 1;
@@ -51,6 +53,9 @@ pub enum Keep {
     Prefix(usize),
     /// None of it: an extra recipient or field, or content past `max_message`.
     Nothing,
+    /// Its place but not its content: a `SENDER` or `RECIPIENT` refused with
+    /// `BAD_ADDRESS`. The recipient stays in its position, listed with an empty address.
+    Blank,
 }
 
 /// What the state machine made of an allowed frame.
@@ -61,7 +66,7 @@ pub struct Accepted {
     pub keep: Keep,
     /// Non-fatal `FAULT`s to send, in order. `TOO_MANY` (once for recipients, once for fields)
     /// and `MESSAGE_TOO_LARGE` come at most once per message; `FIELD_TOO_LARGE` once per cut
-    /// field.
+    /// field; `BAD_ADDRESS` once per refused sender or kept recipient.
     pub notices: Vec<FaultCode>,
 }
 
@@ -82,6 +87,8 @@ pub struct SessionState {
     version: Option<u16>,
     peer_max_frame: Option<u32>,
     recipients: u32,
+    /// What the kept recipients take in the `VERDICT`.
+    recipient_bytes: u64,
     fields: u32,
     size: u64,
     warned_recipients: bool,
@@ -98,6 +105,7 @@ impl SessionState {
             version: None,
             peer_max_frame: None,
             recipients: 0,
+            recipient_bytes: 0,
             fields: 0,
             size: 0,
             warned_recipients: false,
@@ -149,6 +157,17 @@ impl SessionState {
         self.size
     }
 
+    /// Stops taking content for the open message, as if it had passed `max_message`: the
+    /// server could not keep more of it (its memory budget is spent). Returns true when
+    /// this is news, so the caller sends the one `MESSAGE_TOO_LARGE` of the message.
+    pub fn stop_content(&mut self) -> bool {
+        if !self.message_open() || self.over_size {
+            return false;
+        }
+        self.over_size = true;
+        true
+    }
+
     /// The `WELCOME` answering the accepted `HELLO`; `None` before the handshake.
     pub fn welcome(&self, server: &str) -> Option<Frame> {
         self.version.map(|version| Frame::Welcome {
@@ -194,14 +213,22 @@ impl SessionState {
                 self.phase = Phase::Peer;
                 Ok(Accepted::all())
             }
-            Frame::Sender { .. } if matches!(phase, Phase::Ready | Phase::Peer) => {
+            Frame::Sender { address } if matches!(phase, Phase::Ready | Phase::Peer) => {
                 self.reset_message();
                 self.phase = Phase::Envelope;
-                Ok(Accepted::all())
+                Ok(match address::check(address, Role::Sender) {
+                    Ok(()) => Accepted::all(),
+                    Err(_) => Accepted {
+                        keep: Keep::Blank,
+                        notices: vec![FaultCode::BadAddress],
+                    },
+                })
             }
-            Frame::Recipient { .. } if matches!(phase, Phase::Envelope | Phase::Recipients) => {
+            Frame::Recipient { address }
+                if matches!(phase, Phase::Envelope | Phase::Recipients) =>
+            {
                 self.phase = Phase::Recipients;
-                Ok(self.count_recipient())
+                Ok(self.count_recipient(address))
             }
             Frame::Field { name, value } if matches!(phase, Phase::Recipients | Phase::Fields) => {
                 self.phase = Phase::Fields;
@@ -235,6 +262,7 @@ impl SessionState {
 
     fn reset_message(&mut self) {
         self.recipients = 0;
+        self.recipient_bytes = 0;
         self.fields = 0;
         self.size = 0;
         self.warned_recipients = false;
@@ -247,10 +275,31 @@ impl SessionState {
         self.phase = Phase::Ready;
     }
 
-    fn count_recipient(&mut self) -> Accepted {
-        if self.recipients < self.limits.max_recipients {
+    /// The bytes of a `VERDICT` its recipients may take: the client's `max_frame` less what
+    /// the rest of the verdict is allowed (PROTOCOL.md §4).
+    pub fn verdict_recipient_room(&self) -> u64 {
+        let max_frame = self.peer_max_frame.unwrap_or(MIN_MAX_FRAME);
+        u64::from(max_frame.saturating_sub(VERDICT_RESERVE))
+    }
+
+    /// Keeps recipients in order while both the count and the verdict room allow; the first
+    /// one that does not fit and every one after it are extra.
+    fn count_recipient(&mut self, address: &str) -> Accepted {
+        let valid = address::check(address, Role::Recipient).is_ok();
+        let cost = recipient_wire_len(if valid { address.len() } else { 0 });
+        let fits = self.recipients < self.limits.max_recipients
+            && self.recipient_bytes.saturating_add(cost) <= self.verdict_recipient_room();
+        if fits && !self.warned_recipients {
             self.recipients += 1;
-            return Accepted::all();
+            self.recipient_bytes += cost;
+            return if valid {
+                Accepted::all()
+            } else {
+                Accepted {
+                    keep: Keep::Blank,
+                    notices: vec![FaultCode::BadAddress],
+                }
+            };
         }
         let notices = if self.warned_recipients {
             Vec::new()

@@ -145,6 +145,62 @@ impl PartialEq for Verdict {
 
 impl Eq for Verdict {}
 
+/// Bytes of the client's `max_frame` a `VERDICT` keeps for everything but its recipients:
+/// the kind byte, the id, the scores, the three counts, the edits and the reasons
+/// (PROTOCOL.md §4). The recipients get the rest, so a verdict always fits.
+pub const VERDICT_RESERVE: u32 = 1024;
+
+/// What one recipient takes in a `VERDICT`: the `str` length, the address and the action.
+pub fn recipient_wire_len(listed_address_len: usize) -> u64 {
+    3 + listed_address_len as u64
+}
+
+impl Verdict {
+    /// The frame `length` this verdict encodes to (kind byte and payload, PROTOCOL.md §1).
+    pub fn frame_length(&self) -> u64 {
+        let str_len = |s: &str| 2 + s.len() as u64;
+        let recipients: u64 = self
+            .recipients
+            .iter()
+            .map(|r| recipient_wire_len(r.address.len()))
+            .sum();
+        let edits: u64 = self
+            .edits
+            .iter()
+            .map(|e| 1 + str_len(&e.name) + str_len(&e.value))
+            .sum();
+        let reasons: u64 = self.reasons.iter().map(|r| str_len(r)).sum();
+        1 + str_len(&self.verdict_id) + 8 + 8 + 2 + recipients + 2 + edits + 2 + reasons
+    }
+
+    /// Cuts the reasons, last first, until the verdict fits `max_frame`: a reason is shortened
+    /// (at a character boundary) when that is enough, left out otherwise. The id, scores,
+    /// recipients and edits are never touched. Returns the length still needed when even
+    /// without reasons the verdict does not fit.
+    pub fn fit_within(&mut self, max_frame: u32) -> Result<(), u64> {
+        let limit = u64::from(max_frame);
+        loop {
+            let length = self.frame_length();
+            if length <= limit {
+                return Ok(());
+            }
+            let excess = usize::try_from(length - limit).unwrap_or(usize::MAX);
+            let Some(last) = self.reasons.last_mut() else {
+                return Err(length);
+            };
+            if last.len() > excess {
+                let mut keep = last.len() - excess;
+                while !last.is_char_boundary(keep) {
+                    keep -= 1;
+                }
+                last.truncate(keep);
+            } else {
+                self.reasons.pop();
+            }
+        }
+    }
+}
+
 /// Parses a `VERDICT` payload; the caller checks it was consumed exactly.
 pub(super) fn parse_verdict(input: &[u8]) -> WireResult<'_, Verdict> {
     (

@@ -1,29 +1,43 @@
 //! One relay connection: frames in, verdicts out.
 //!
-//! Invariants: one read buffer per connection, advanced only past whole frames; a declared
-//! frame length is checked against the limit before its payload is waited for; the message
-//! being assembled never grows past the scan limit (bytes beyond it are read and dropped);
-//! scoring runs on a blocking thread with the engine the message started with. Every error
-//! in a session ends in that session (logged and counted), never in the listener.
+//! Invariants: one read buffer per connection, advanced only past whole frames, and given
+//! back between messages after a large frame; a declared frame length is checked against
+//! the limit before its payload is waited for; the message being assembled never grows past
+//! the scan limit nor past what the daemon-wide buffer budget lends (bytes beyond are read
+//! and dropped, the message is still scored); one `FIELD` is one header line in it; a
+//! `VERDICT` always fits the client's `max_frame`; `HELLO` must come within the handshake
+//! timeout and `PING` alone never restarts the idle timeout; scoring runs on a blocking
+//! thread with the engine the message started with; every value from the peer is escaped
+//! before it is logged. Every error in a session ends in that session (logged and
+//! counted), never in the listener.
 
 use std::sync::Arc;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 use bytes::{Buf, BytesMut};
 use tokio::io::{AsyncRead, AsyncReadExt, AsyncWrite, AsyncWriteExt};
+use tokio::time::Instant;
 use tokio_util::sync::CancellationToken;
 
+use super::access::Secret;
+use super::budget::{Budget, Buffer, MESSAGE_FLOOR};
 use super::engine::{Engine, SharedEngine};
+use super::throttle::Throttle;
 use crate::config::Limits as ConfigLimits;
+use crate::logsafe::safe;
 use crate::metrics::Metrics;
 use crate::policy::{self, Action, HeaderEdit, UnscannedReason};
+use crate::proto::address::{self, Role};
 use crate::proto::{
-    Edit, EditOp, FaultCode, Frame, Keep, Limits, MIN_MAX_FRAME, RecipientAction, SessionState,
-    Verdict, encode_frame_within, parse_frame,
+    Edit, EditOp, FaultCode, Frame, Keep, Limits, MIN_MAX_FRAME, Phase, RecipientAction,
+    SessionState, Verdict, encode_frame_within, parse_frame,
 };
 
 /// Everything a session needs from the daemon.
+#[derive(Clone)]
 pub struct Context {
+    /// The bytes all open messages may hold together.
+    pub budget: Arc<Budget>,
     /// The engine in force (swapped by reloads).
     pub engine: SharedEngine,
     /// The metrics registry.
@@ -34,9 +48,31 @@ pub struct Context {
     pub server_name: String,
     /// Cancelled when the daemon shuts down.
     pub shutdown: CancellationToken,
+    /// The shared secret a `HELLO` must carry on this listener; `None` asks for none.
+    pub secret: Option<Arc<Secret>>,
+    /// Refused handshakes are logged at most once a second.
+    pub refused_log: Arc<Throttle>,
+    /// A spent buffer budget is logged at most once a second.
+    pub budget_log: Arc<Throttle>,
 }
 
 impl Context {
+    /// A context serving `engine` under `limits`, counting into `metrics`, named after this
+    /// build, with its own shutdown token.
+    pub fn new(engine: SharedEngine, metrics: Arc<Metrics>, limits: ConfigLimits) -> Context {
+        Context {
+            budget: Budget::new(limits.max_buffered_bytes, metrics.buffered_bytes_gauge()),
+            engine,
+            metrics,
+            limits,
+            server_name: format!("tamis {}", env!("CARGO_PKG_VERSION")),
+            shutdown: CancellationToken::new(),
+            secret: None,
+            refused_log: Arc::new(Throttle::new(Duration::from_secs(1))),
+            budget_log: Arc::new(Throttle::new(Duration::from_secs(1))),
+        }
+    }
+
     fn protocol_limits(&self) -> Limits {
         Limits {
             max_frame: self.limits.max_frame_bytes,
@@ -48,6 +84,86 @@ impl Context {
     }
 }
 
+/// The clocks a connection is held to (PROTOCOL.md §7).
+struct Timers {
+    /// When the connection was accepted: `HELLO` must be complete within the handshake
+    /// timeout from here.
+    accepted: Instant,
+    /// The last frame other than `PING`: the idle timeout runs from here, so `PING` alone
+    /// cannot hold a connection.
+    active: Instant,
+    /// When the frame now being received began to arrive: a frame must be complete within
+    /// the read timeout however slowly its bytes trickle in.
+    frame_started: Option<Instant>,
+}
+
+/// Which clock ran out.
+#[derive(Debug, Clone, Copy)]
+enum Timer {
+    Handshake,
+    Idle,
+    Frame,
+}
+
+impl Timer {
+    fn explain(self, limits: &ConfigLimits) -> String {
+        let show = crate::config::duration::display;
+        match self {
+            Timer::Handshake => format!("no HELLO within {}", show(limits.handshake_timeout)),
+            Timer::Idle => format!("no frame but PING for {}", show(limits.idle_timeout)),
+            Timer::Frame => format!("frame not completed within {}", show(limits.read_timeout)),
+        }
+    }
+}
+
+impl Timers {
+    fn new(now: Instant) -> Timers {
+        Timers {
+            accepted: now,
+            active: now,
+            frame_started: None,
+        }
+    }
+
+    fn frame_done(&mut self, frame: &Frame, now: Instant) {
+        self.frame_started = None;
+        if !matches!(frame, Frame::Ping { .. }) {
+            self.active = now;
+        }
+    }
+
+    fn frame_begun(&mut self, now: Instant) {
+        self.frame_started.get_or_insert(now);
+    }
+
+    /// The earliest deadline and the clock it belongs to.
+    fn next(&self, limits: &ConfigLimits, handshake_done: bool) -> (Instant, Timer) {
+        let waiting = if handshake_done {
+            (later(self.active, limits.idle_timeout), Timer::Idle)
+        } else {
+            (
+                later(self.accepted, limits.handshake_timeout),
+                Timer::Handshake,
+            )
+        };
+        match self.frame_started {
+            Some(started) if later(started, limits.read_timeout) < waiting.0 => {
+                (later(started, limits.read_timeout), Timer::Frame)
+            }
+            _ => waiting,
+        }
+    }
+}
+
+/// `at + wait`, or about thirty years on when a configured duration is too long for the
+/// clock (as `tokio::time::timeout` treats one), never a panic.
+fn later(at: Instant, wait: Duration) -> Instant {
+    const FAR: Duration = Duration::from_secs(86_400 * 365 * 30);
+    at.checked_add(wait)
+        .or_else(|| at.checked_add(FAR))
+        .unwrap_or(at)
+}
+
 /// The message being assembled.
 #[derive(Default)]
 struct Message {
@@ -57,7 +173,9 @@ struct Message {
     /// Most bytes kept: the engine's raw scan limit, never more than the message limit.
     cap: usize,
     recipients: Vec<String>,
-    raw: Vec<u8>,
+    /// The message as assembled for scoring, paid from the daemon's buffer budget; `None`
+    /// between messages.
+    raw: Option<Buffer>,
     body_started: bool,
     enough_sent: bool,
 }
@@ -76,13 +194,13 @@ where
     let mut session = Session {
         state: SessionState::new(ctx.protocol_limits()),
         stream,
-        read: BytesMut::with_capacity(16 * 1024),
-        write: BytesMut::with_capacity(1024),
+        read: BytesMut::with_capacity(READ_BUFFER),
+        write: BytesMut::with_capacity(WRITE_BUFFER),
         message: Message::default(),
         ctx,
     };
     if let Err(e) = session.run().await {
-        tracing::debug!(peer = %peer, error = %e, "connection ended with an I/O error");
+        tracing::debug!(peer = %safe(&peer), error = %e, "connection ended with an I/O error");
     }
 }
 
@@ -101,15 +219,13 @@ where
 {
     async fn run(&mut self) -> std::io::Result<()> {
         let max_frame = self.ctx.limits.max_frame_bytes;
-        // When the frame now being received began to arrive: a frame must be complete within
-        // the read timeout however slowly its bytes trickle in.
-        let mut frame_started: Option<Instant> = None;
+        let mut timers = Timers::new(Instant::now());
         loop {
             loop {
                 match parse_frame(&self.read, max_frame) {
                     Ok(Some((frame, used))) => {
                         self.read.advance(used);
-                        frame_started = None;
+                        timers.frame_done(&frame, Instant::now());
                         if let Flow::Close = self.handle(frame).await? {
                             return self.finish().await;
                         }
@@ -122,30 +238,27 @@ where
                     }
                 }
             }
+            if !self.state.message_open() {
+                // Between messages: a large frame's buffers go back (not while streaming,
+                // where they would only be allocated again for the next chunk).
+                shrink_after_use(&mut self.read, READ_BUFFER);
+                shrink_after_use(&mut self.write, WRITE_BUFFER);
+            }
             let stopping = self.ctx.shutdown.is_cancelled();
             if stopping && !self.state.message_open() {
                 self.send(&Frame::ServerBye).await?;
                 return self.finish().await;
             }
-            let limits = &self.ctx.limits;
-            let wait = if self.read.is_empty() {
-                limits.idle_timeout
-            } else {
-                let started = *frame_started.get_or_insert_with(Instant::now);
-                limits.read_timeout.saturating_sub(started.elapsed())
-            };
+            if !self.read.is_empty() {
+                timers.frame_begun(Instant::now());
+            }
+            let handshake_done = self.state.phase() != Phase::Start;
+            let (deadline, timer) = timers.next(&self.ctx.limits, handshake_done);
             let shutdown = self.ctx.shutdown.clone();
             tokio::select! {
-                read = tokio::time::timeout(wait, self.stream.read_buf(&mut self.read)) => match read {
+                read = tokio::time::timeout_at(deadline, self.stream.read_buf(&mut self.read)) => match read {
                     Err(_elapsed) => {
-                        let text = if self.read.is_empty() {
-                            format!("no frame for {}", crate::config::duration::display(limits.idle_timeout))
-                        } else {
-                            format!(
-                                "frame not completed within {}",
-                                crate::config::duration::display(limits.read_timeout)
-                            )
-                        };
+                        let text = timer.explain(&self.ctx.limits);
                         self.fault(FaultCode::Idle, true, &text).await?;
                         return self.finish().await;
                     }
@@ -177,13 +290,14 @@ where
 
     async fn fault(&mut self, code: FaultCode, fatal: bool, text: &str) -> std::io::Result<()> {
         self.ctx.metrics.protocol_error(code.name());
-        tracing::debug!(code = code.name(), fatal, text, "fault");
-        let mut text = text.to_string();
-        // A fault must fit the smallest frame a client may announce.
-        text.truncate(1024);
-        while !text.is_char_boundary(text.len()) {
-            text.pop();
+        tracing::debug!(code = code.name(), fatal, text = %safe(text), "fault");
+        // A fault must fit the smallest frame a client may announce; cut at a character
+        // boundary (`String::truncate` would panic inside a character).
+        let mut cut = text.len().min(1024);
+        while !text.is_char_boundary(cut) {
+            cut -= 1;
         }
+        let text = text.get(..cut).unwrap_or_default().to_string();
         self.send(&Frame::Fault { code, fatal, text }).await
     }
 
@@ -195,74 +309,86 @@ where
                 return Ok(Flow::Close);
             }
         };
+        if matches!(frame, Frame::Sender { .. }) && self.ctx.shutdown.is_cancelled() {
+            self.fault(
+                FaultCode::ShuttingDown,
+                true,
+                "the daemon is stopping; retry later",
+            )
+            .await?;
+            return Ok(Flow::Close);
+        }
         for notice in &accepted.notices {
-            let text = match notice {
-                FaultCode::MessageTooLarge => {
-                    "message larger than the scan limit; the rest is not read"
-                }
-                FaultCode::TooMany => "too many recipients or fields; the extra ones are ignored",
-                FaultCode::FieldTooLarge => "header field value cut at the limit",
-                _ => "notice",
-            };
-            self.fault(*notice, false, text).await?;
+            let text = self.notice_text(*notice, &frame);
+            self.fault(*notice, false, &text).await?;
         }
         let keep = |data: &[u8]| -> usize {
             match accepted.keep {
                 Keep::All => data.len(),
                 Keep::Prefix(n) => n.min(data.len()),
-                Keep::Nothing => 0,
+                Keep::Nothing | Keep::Blank => 0,
             }
         };
         match frame {
-            Frame::Hello { .. } => {
+            Frame::Hello { secret, .. } => {
+                if let Some(expected) = &self.ctx.secret {
+                    let refusal = match &secret {
+                        None => Some("HELLO carries no shared secret; this listener requires one"),
+                        Some(given) if !expected.matches(given) => {
+                            Some("HELLO carries a wrong shared secret")
+                        }
+                        Some(_) => None,
+                    };
+                    if let Some(text) = refusal {
+                        if let Some(held_back) = self.ctx.refused_log.admit(Instant::now()) {
+                            tracing::warn!(reason = text, held_back, "handshake refused");
+                        }
+                        self.fault(FaultCode::Denied, true, text).await?;
+                        return Ok(Flow::Close);
+                    }
+                }
                 if let Some(welcome) = self.state.welcome(&self.ctx.server_name) {
                     self.send(&welcome).await?;
                 }
             }
             Frame::Peer { .. } => {}
             Frame::Sender { .. } => {
-                if self.ctx.shutdown.is_cancelled() {
-                    self.fault(
-                        FaultCode::ShuttingDown,
-                        true,
-                        "the daemon is stopping; retry later",
-                    )
-                    .await?;
-                    return Ok(Flow::Close);
-                }
                 let engine = self.ctx.engine.current();
                 let cap = (engine.model().spec().limits.max_raw_bytes as u64)
                     .min(self.ctx.limits.max_message_bytes) as usize;
+                // Room for the separators around the header section beyond the scan cap.
+                let raw = Buffer::new(&self.ctx.budget, cap.saturating_add(4), MESSAGE_FLOOR);
                 self.message = Message {
                     engine: Some(engine),
                     cap,
+                    raw: Some(raw),
                     ..Message::default()
                 };
             }
-            Frame::Recipient { address } if !matches!(accepted.keep, Keep::Nothing) => {
-                self.message.recipients.push(address);
-            }
+            Frame::Recipient { address } => match accepted.keep {
+                Keep::Nothing => {}
+                // A refused address keeps its place but is neither echoed nor trusted to
+                // pick a policy section: the empty address falls under the default one.
+                Keep::Blank => self.message.recipients.push(String::new()),
+                Keep::All | Keep::Prefix(_) => self.message.recipients.push(address),
+            },
             Frame::Field { name, value } => {
                 let n = keep(&value);
                 if n > 0 || matches!(accepted.keep, Keep::All) {
                     let room = self.scan_room();
-                    let m = &mut self.message;
-                    if room > name.len() + 4 {
-                        m.raw.extend_from_slice(name.as_bytes());
-                        m.raw.extend_from_slice(b": ");
-                        let take = n.min(room - name.len() - 4);
-                        m.raw.extend_from_slice(&value[..take]);
-                        m.raw.extend_from_slice(b"\r\n");
-                    }
+                    let value = value.get(..n).unwrap_or(&value);
+                    let mut line = Vec::new();
+                    append_field(&mut line, &name, value, room);
+                    self.append(&line).await?;
                 }
             }
             Frame::Chunk { data } => {
                 if !self.message.body_started {
-                    self.message.raw.extend_from_slice(b"\r\n");
+                    self.append(b"\r\n").await?;
                     self.message.body_started = true;
                 }
                 let n = keep(&data).min(self.scan_room());
-                self.message.raw.extend_from_slice(&data[..n]);
+                self.append(&data[..n]).await?;
                 if !self.message.enough_sent && self.scan_room() == 0 {
                     self.message.enough_sent = true;
                     self.send(&Frame::Enough).await?;
@@ -270,10 +396,27 @@ where
             }
             Frame::Seal => {
                 if !self.message.body_started {
-                    self.message.raw.extend_from_slice(b"\r\n");
+                    self.append(b"\r\n").await?;
                 }
-                let verdict = self.decide().await;
+                let mut verdict = self.decide().await;
                 self.message = Message::default();
+                let limit = self.state.peer_max_frame().unwrap_or(MIN_MAX_FRAME);
+                if let Err(length) = verdict.fit_within(limit) {
+                    // The recipient room of the state machine makes this unreachable unless
+                    // the edits outgrew their reserve; the relay must still hear of it.
+                    tracing::error!(
+                        verdict_id = %verdict.verdict_id,
+                        length,
+                        limit,
+                        "a verdict does not fit the client's frame limit"
+                    );
+                    let text = format!(
+                        "verdict {} needs {length} bytes, above your max_frame of {limit}; the message is not decided",
+                        verdict.verdict_id
+                    );
+                    self.fault(FaultCode::VerdictTooLarge, true, &text).await?;
+                    return Ok(Flow::Close);
+                }
                 self.send(&Frame::Verdict(verdict)).await?;
             }
             Frame::Drop => self.message = Message::default(),
@@ -288,9 +431,71 @@ where
         Ok(Flow::Continue)
     }
 
+    /// The text of a non-fatal `FAULT` about `frame`.
+    fn notice_text(&self, code: FaultCode, frame: &Frame) -> String {
+        match (code, frame) {
+            (FaultCode::MessageTooLarge, _) => {
+                "message larger than the scan limit; the rest is not read".to_string()
+            }
+            (FaultCode::TooMany, _) => {
+                "too many recipients or fields; the extra ones are ignored".to_string()
+            }
+            (FaultCode::FieldTooLarge, _) => "header field value cut at the limit".to_string(),
+            (FaultCode::BadAddress, Frame::Sender { address }) => {
+                let why = address::check(address, Role::Sender)
+                    .err()
+                    .map(|e| e.to_string())
+                    .unwrap_or_default();
+                tracing::debug!(address = %safe(address), reason = %why, "SENDER refused");
+                format!("SENDER refused: {why}; the message goes on")
+            }
+            (FaultCode::BadAddress, Frame::Recipient { address }) => {
+                let position = self.message.recipients.len() + 1;
+                let why = address::check(address, Role::Recipient)
+                    .err()
+                    .map(|e| e.to_string())
+                    .unwrap_or_default();
+                tracing::debug!(position, address = %safe(address), reason = %why, "RECIPIENT refused");
+                format!(
+                    "RECIPIENT {position} refused: {why}; it is listed with an empty address and decided under the default thresholds"
+                )
+            }
+            (code, _) => code.name().to_string(),
+        }
+    }
+
     /// Bytes the message may still grow by.
     fn scan_room(&self) -> usize {
-        self.message.cap.saturating_sub(self.message.raw.len())
+        let len = self.message.raw.as_ref().map_or(0, Buffer::len);
+        self.message.cap.saturating_sub(len)
+    }
+
+    /// Adds `data` to the message within the buffer budget. When the budget cannot pay for
+    /// all of it, the message takes the `MESSAGE_TOO_LARGE` path (PROTOCOL.md §5): what was
+    /// kept is scored, the rest of its content is read and dropped.
+    async fn append(&mut self, data: &[u8]) -> std::io::Result<()> {
+        let Some(raw) = self.message.raw.as_mut() else {
+            return Ok(());
+        };
+        let granted = raw.room_for(data.len());
+        raw.extend(data.get(..granted).unwrap_or(data));
+        if granted < data.len() && self.state.stop_content() {
+            self.ctx.metrics.budget_exhausted();
+            if let Some(held_back) = self.ctx.budget_log.admit(Instant::now()) {
+                tracing::warn!(
+                    limit = self.ctx.budget.limit(),
+                    held_back,
+                    "the buffer budget is spent; a message is decided on part of its content"
+                );
+            }
+            self.fault(
+                FaultCode::MessageTooLarge,
+                false,
+                "the daemon's message memory is in use by other messages; this one is decided on what it has",
+            )
+            .await?;
+        }
+        Ok(())
     }
 
     async fn decide(&mut self) -> Verdict {
@@ -300,7 +505,14 @@ where
             .engine
             .take()
             .unwrap_or_else(|| self.ctx.engine.current());
-        let raw = std::mem::take(&mut self.message.raw);
+        // The buffer's budget share stays with the message until it is reset after the
+        // verdict, so the bytes count for as long as they are scored.
+        let raw = self
+            .message
+            .raw
+            .as_mut()
+            .map(Buffer::take_bytes)
+            .unwrap_or_default();
         let recipients = std::mem::take(&mut self.message.recipients);
         let bytes = raw.len() as u64;
         let started = Instant::now();
@@ -335,7 +547,7 @@ where
                 };
                 let reason = UnscannedReason::ScanFailed;
                 self.ctx.metrics.unscanned(reason);
-                tracing::warn!(verdict_id = %verdict_id, error = %why, "message not scanned");
+                tracing::warn!(verdict_id = %verdict_id, error = %safe(&why), "message not scanned");
                 let decisions = d.policy.unscanned(&recipients, d.on_failure);
                 let edits = d.policy.unscanned_edits(d.on_failure, reason);
                 (
@@ -362,6 +574,38 @@ where
     }
 }
 
+/// Appends `name: value` CRLF to the message assembled for scoring, in at most `room`
+/// bytes (the value is cut to fit; nothing is written when not even the name fits).
+///
+/// The field must stay one field (PROTOCOL.md §2, `FIELD`): CR, LF, NUL and `:` in the name,
+/// and a CR or LF in the value that does not start a fold (CRLF or LF followed by SP or
+/// HTAB), are written as spaces, so a relay's field can never forge another header line.
+fn append_field(raw: &mut Vec<u8>, name: &str, value: &[u8], room: usize) {
+    let overhead = name.len() + 4;
+    if room <= overhead {
+        return;
+    }
+    raw.extend(name.bytes().map(|b| {
+        if matches!(b, b'\r' | b'\n' | 0 | b':') {
+            b' '
+        } else {
+            b
+        }
+    }));
+    raw.extend_from_slice(b": ");
+    let value = value.get(..room - overhead).unwrap_or(value);
+    let blank_at = |i: usize| matches!(value.get(i), Some(b' ' | b'\t'));
+    for (i, &b) in value.iter().enumerate() {
+        let folds = match b {
+            b'\r' => value.get(i + 1) == Some(&b'\n') && blank_at(i + 2),
+            b'\n' => blank_at(i + 1),
+            _ => true,
+        };
+        raw.push(if folds { b } else { b' ' });
+    }
+    raw.extend_from_slice(b"\r\n");
+}
+
 fn log_verdict(
     id: &str,
     decisions: &[(String, Action)],
@@ -380,7 +624,7 @@ fn log_verdict(
         .unwrap_or_default();
     tracing::info!(
         verdict_id = %id,
-        domain = %domain,
+        domain = %safe(&domain),
         action = strongest.as_str(),
         margin = margin,
         duration_ms = seconds * 1e3,
@@ -404,12 +648,29 @@ fn wire_edit(edit: &HeaderEdit) -> Edit {
     }
 }
 
+/// The read buffer's usual size; after a larger frame it is given back (see
+/// [`shrink_after_use`]).
+const READ_BUFFER: usize = 16 * 1024;
+/// The write buffer's usual size.
+const WRITE_BUFFER: usize = 1024;
+
+/// Gives back a buffer that grew past 4 times its usual `size` (a large frame came or
+/// went) once what is left in it fits the usual size, so an idle connection holds little
+/// however large its last frame was.
+fn shrink_after_use(buf: &mut BytesMut, size: usize) {
+    if buf.capacity() > size.saturating_mul(4) && buf.len() <= size {
+        let mut fresh = BytesMut::with_capacity(size);
+        fresh.extend_from_slice(buf);
+        *buf = fresh;
+    }
+}
+
 /// How long a refused connection waits for its `HELLO` before being closed.
 pub const BUSY_HELLO_WAIT: Duration = Duration::from_secs(5);
 
-/// Answers a connection over the limit: reads its `HELLO` (PROTOCOL.md §3), replies
-/// `FAULT BUSY` and closes.
-pub async fn refuse_busy<S>(mut stream: S, metrics: Arc<Metrics>)
+/// Answers a refused connection: reads its `HELLO` (PROTOCOL.md §3), replies with a fatal
+/// `FAULT` of `code` and closes. The caller counts the refusal.
+pub async fn refuse_after_hello<S>(mut stream: S, code: FaultCode, text: &str)
 where
     S: AsyncRead + AsyncWrite + Unpin + Send,
 {
@@ -427,17 +688,81 @@ where
         }
     })
     .await;
-    metrics.protocol_error(FaultCode::Busy.name());
     if let Ok(true) = hello {
         let mut out = BytesMut::new();
         let frame = Frame::Fault {
-            code: FaultCode::Busy,
+            code,
             fatal: true,
-            text: "connection limit reached; retry later".to_string(),
+            text: text.to_string(),
         };
         if encode_frame_within(&frame, MIN_MAX_FRAME, &mut out).is_ok() {
             let _ = stream.write_all(&out).await;
         }
     }
     let _ = stream.shutdown().await;
+}
+
+#[cfg(test)]
+mod tests {
+    use super::{BytesMut, Duration, Instant, READ_BUFFER, append_field, later, shrink_after_use};
+
+    #[test]
+    fn a_huge_timeout_never_overflows_the_clock() {
+        let now = Instant::now();
+        assert!(later(now, Duration::MAX) > now);
+        assert_eq!(
+            later(now, Duration::from_secs(5)),
+            now + Duration::from_secs(5)
+        );
+    }
+
+    #[test]
+    fn a_read_buffer_is_given_back_after_a_large_frame() {
+        let mut buf = BytesMut::with_capacity(READ_BUFFER);
+        buf.extend_from_slice(&vec![0u8; 1 << 20]);
+        shrink_after_use(&mut buf, READ_BUFFER);
+        assert!(buf.capacity() >= 1 << 20, "kept while the frame is in it");
+        let _ = buf.split_to((1 << 20) - 10);
+        shrink_after_use(&mut buf, READ_BUFFER);
+        assert!(buf.capacity() <= 4 * READ_BUFFER, "{}", buf.capacity());
+        assert_eq!(buf.len(), 10, "the bytes of the next frame are kept");
+    }
+
+    fn field(name: &str, value: &[u8], room: usize) -> Vec<u8> {
+        let mut raw = Vec::new();
+        append_field(&mut raw, name, value, room);
+        raw
+    }
+
+    #[test]
+    fn a_field_is_always_one_header_field() {
+        assert_eq!(field("Subject", b"hi", 100), b"Subject: hi\r\n");
+        assert_eq!(
+            field("X-A\r\nBcc", b"v", 100),
+            b"X-A  Bcc: v\r\n",
+            "CR and LF in a name"
+        );
+        assert_eq!(field("X:\0Y", b"v", 100), b"X  Y: v\r\n", "':' and NUL");
+        assert_eq!(
+            field("X-B", b"x\r\nBcc: y\rz\n", 100),
+            b"X-B: x  Bcc: y z \r\n",
+            "line breaks in a value that are not folding"
+        );
+        assert_eq!(
+            field("X-C", b"a\r\n\tb\n c", 100),
+            b"X-C: a\r\n\tb\n c\r\n",
+            "folding is kept"
+        );
+        // Names the extractor must still score are left alone (issue 7, item 1).
+        assert_eq!(field("X Y", b"z", 100), b"X Y: z\r\n");
+        assert_eq!(field("", b"z", 100), b": z\r\n");
+    }
+
+    #[test]
+    fn a_field_is_cut_to_the_room_left() {
+        assert_eq!(field("Subject", b"0123456789", 15), b"Subject: 0123\r\n");
+        assert_eq!(field("Subject", b"0123", 11), b"");
+        // A CRLF fold cut in half is no fold any more.
+        assert_eq!(field("A", b"x\r\n y", 7), b"A: x \r\n");
+    }
 }

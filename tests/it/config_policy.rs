@@ -118,6 +118,8 @@ fn every_key_appears_in_the_example() {
         mode: 0o600,
     });
     full.model = ModelSource::File(PathBuf::from("/var/lib/tamis/current.tamis"));
+    full.access.secret_file = Some(PathBuf::from("/etc/tamis/relay.secret"));
+    full.limits.max_connections_per_peer = Some(64);
     full.headers.subject_prefix = Some("[junk?] ".to_string());
     let on_margin = Thresholds::on_margin(0.0, 1.0)
         .map(|t| t.with_tag_only(Some(true)))
@@ -276,6 +278,7 @@ fn semantic_errors_are_refused_with_what_to_do() {
         ("[limits]\nmax_connections = 0\n", "at least 1", 2),
         ("[limits]\nidle_timeout = 0\n", "positive", 2),
         ("[limits]\nread_timeout = \"0s\"\n", "zero", 2),
+        ("[limits]\nhandshake_timeout = \"0s\"\n", "zero", 2),
         ("[limits]\nmax_message_bytes = \"0 MiB\"\n", "zero", 2),
         ("[limits]\ngrace_period = \"11m\"\n", "10 minutes", 1),
         ("[limits]\nmax_frame_bytes = 1000\n", "4096", 1),
@@ -292,6 +295,19 @@ fn semantic_errors_are_refused_with_what_to_do() {
             1,
         ),
         ("[listen]\ntcp = \"localhost:7357\"\n", "not an address", 2),
+        (
+            "[access]\ntcp_allow = [\"10.0.0.0/8\", \"10.1.2.3/16\"]\n",
+            "\"10.1.0.0/16\"",
+            2,
+        ),
+        ("[access]\ntcp_allow = [\"intranet\"]\n", "CIDR", 2),
+        ("[access]\nsecret = \"inline\"\n", "unknown field", 2),
+        ("[limits]\nmax_connections_per_peer = 0\n", "at least 1", 2),
+        (
+            "[limits]\nmax_connections = 10\nmax_connections_per_peer = 11\n",
+            "max_connections_per_peer",
+            1,
+        ),
         (
             "[listen.unix]\npath = \"/run/x.sock\"\nmode = 432\n",
             "octal string",
@@ -363,6 +379,42 @@ fn semantic_errors_are_refused_with_what_to_do() {
     let e = parse_err("metrics = \"127.0.0.1:7357\"\n");
     assert!(e.to_string().contains("listen.tcp"), "{e}");
     assert!(e.to_string().contains("help: "), "{e}");
+    let e = parse_err("[access]\ntcp_allow = []\n");
+    assert!(e.to_string().contains("no TCP peer could connect"), "{e}");
+    // Without TCP, an empty allow-list is fine.
+    parse_ok(
+        "[listen]\ntcp = \"off\"\n[listen.unix]\npath = \"/run/t.sock\"\n[access]\ntcp_allow = []\n",
+    );
+}
+
+#[test]
+fn access_defaults_to_loopback_and_the_secret_file_is_checked_at_load() {
+    use std::os::unix::fs::PermissionsExt;
+    let c = Config::default();
+    let ranges: Vec<String> = c.access.tcp_allow.iter().map(|r| r.to_string()).collect();
+    assert_eq!(ranges, strings(&["127.0.0.0/8", "::1/128"]));
+    assert_eq!(c.access.secret_file, None);
+    let c =
+        parse_ok("[access]\ntcp_allow = [\"192.0.2.0/24\", \"2001:db8::/32\", \"198.51.100.7\"]\n");
+    assert_eq!(c.access.tcp_allow.len(), 3);
+
+    let dir = tempfile::tempdir().expect("temp dir");
+    let config = dir.path().join("tamis.toml");
+    std::fs::write(&config, "[access]\nsecret_file = \"relay.secret\"\n").expect("write");
+    let secret = dir.path().join("relay.secret");
+    // Missing, then readable by everyone, then fine.
+    let e = Config::load(&config).expect_err("no secret file");
+    assert!(e.to_string().contains("access.secret_file"), "{e}");
+    std::fs::write(&secret, "an-example-secret-of-32-bytes-ok\n").expect("write");
+    std::fs::set_permissions(&secret, std::fs::Permissions::from_mode(0o644)).expect("chmod");
+    let e = Config::load(&config).expect_err("exposed");
+    assert!(e.to_string().contains("chmod 0600"), "{e}");
+    std::fs::set_permissions(&secret, std::fs::Permissions::from_mode(0o600)).expect("chmod");
+    let c = Config::load(&config).expect("loads");
+    assert_eq!(c.access.secret_file, Some(secret.clone()));
+    // The secret itself never appears in the configuration's text.
+    let text = c.to_toml_string().expect("serialises");
+    assert!(!text.contains("an-example-secret"), "{text}");
 }
 
 // --- Policy ------------------------------------------------------------------------------
@@ -545,7 +597,7 @@ fn verdict_ids_are_short_unique_and_sorted() {
 
 // --- Metrics -------------------------------------------------------------------------------
 
-const FAMILIES: [&str; 9] = [
+const FAMILIES: [&str; 10] = [
     "tamis_messages_total",
     "tamis_margin",
     "tamis_scan_duration_seconds",
@@ -555,6 +607,7 @@ const FAMILIES: [&str; 9] = [
     "tamis_reloads_total",
     "tamis_model_info",
     "tamis_unscanned_total",
+    "tamis_accept_errors_total",
 ];
 
 /// Metrics after a few of every event, and one connection still open.
@@ -661,7 +714,16 @@ fn domain_labels_are_bounded_to_the_policy() {
         .filter_map(|l| l.split("kind=\"").nth(1))
         .filter_map(|r| r.split('"').next())
         .collect();
-    assert!(kinds.contains("other") && kinds.len() == 12, "{kinds:?}");
+    assert!(
+        kinds.contains("other") && kinds.len() == tamis::metrics::PROTOCOL_ERROR_KINDS.len() + 1,
+        "{kinds:?}"
+    );
+    for code in tamis::proto::FaultCode::ALL {
+        assert!(
+            kinds.contains(code.name().to_lowercase().as_str()),
+            "{code}"
+        );
+    }
 
     // A reload that adds a domain gives it its own label from then on.
     m.set_domains(["example.org", "new.example.org"]);

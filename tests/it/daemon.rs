@@ -100,9 +100,14 @@ impl Raw {
 
     /// The next frame, or `None` when the server closed the connection.
     fn next(&mut self) -> Option<Frame> {
+        self.next_within(1 << 20)
+    }
+
+    /// The next frame, which must fit `max_frame` (the limit this client announced).
+    fn next_within(&mut self, max_frame: u32) -> Option<Frame> {
         loop {
             if let Some((frame, used)) =
-                parse_frame(&self.buf, 1 << 20).expect("server frames parse")
+                parse_frame(&self.buf, max_frame).expect("server frames parse within the limit")
             {
                 let _ = self.buf.split_to(used);
                 return Some(frame);
@@ -121,6 +126,7 @@ impl Raw {
             version: 1,
             max_frame: 1 << 20,
             client: "test".into(),
+            secret: None,
         });
         assert!(matches!(raw.next(), Some(Frame::Welcome { .. })));
         raw
@@ -471,6 +477,7 @@ mod hostile {
                             version: 1,
                             max_frame: 1 << 20,
                             client: "one too many".into(),
+                            secret: None,
                         });
                         extra.fatal()
                     })
@@ -932,5 +939,804 @@ async fn a_message_that_cannot_be_scored_follows_the_failure_mode() {
                 .any(|l| l.starts_with("tamis_unscanned_total") && l.ends_with(" 1"))
         );
         assert!(running.stop().await);
+    }
+}
+
+/// Log events captured in memory: one entry per event, as the subscriber wrote it.
+#[derive(Clone, Default)]
+struct CapturedLog(Arc<std::sync::Mutex<Vec<Vec<u8>>>>);
+
+/// Collects one event's bytes and files them when the subscriber drops it.
+struct EventWriter {
+    log: CapturedLog,
+    bytes: Vec<u8>,
+}
+
+impl Write for EventWriter {
+    fn write(&mut self, buf: &[u8]) -> std::io::Result<usize> {
+        self.bytes.extend_from_slice(buf);
+        Ok(buf.len())
+    }
+
+    fn flush(&mut self) -> std::io::Result<()> {
+        Ok(())
+    }
+}
+
+impl Drop for EventWriter {
+    fn drop(&mut self) {
+        if let Ok(mut events) = self.log.0.lock() {
+            events.push(std::mem::take(&mut self.bytes));
+        }
+    }
+}
+
+impl<'a> tracing_subscriber::fmt::MakeWriter<'a> for CapturedLog {
+    type Writer = EventWriter;
+
+    fn make_writer(&'a self) -> EventWriter {
+        EventWriter {
+            log: self.clone(),
+            bytes: Vec::new(),
+        }
+    }
+}
+
+impl CapturedLog {
+    fn events(&self) -> Vec<String> {
+        self.0
+            .lock()
+            .map(|e| {
+                e.iter()
+                    .map(|b| String::from_utf8_lossy(b).into_owned())
+                    .collect()
+            })
+            .unwrap_or_default()
+    }
+}
+
+/// A recipient carrying a newline, a forged log line and terminal escapes (ESC [2J clears
+/// the screen) must not produce a second line in either log format. The daemon runs on
+/// this test's single thread, so the scoped subscriber sees every event of its tasks.
+#[tokio::test]
+async fn a_recipient_cannot_forge_a_log_line() {
+    use tracing_subscriber::layer::SubscriberExt;
+    let human = CapturedLog::default();
+    let json = CapturedLog::default();
+    let subscriber = tracing_subscriber::registry()
+        .with(tracing_subscriber::filter::LevelFilter::DEBUG)
+        .with(
+            tracing_subscriber::fmt::layer()
+                .with_ansi(false)
+                .with_writer(human.clone()),
+        )
+        .with(
+            tracing_subscriber::fmt::layer()
+                .json()
+                .with_writer(json.clone()),
+        );
+    // With a single dispatcher registered, tracing-core (0.1.36, `Rebuilder::JustOne`) decides
+    // whether a callsite is enabled from the default of whichever thread reaches it first,
+    // which in a parallel test run is another test's thread with no subscriber. A second,
+    // idle dispatcher makes it ask every registered dispatcher, this test's included.
+    let _second = tracing::Dispatch::new(tracing_subscriber::registry());
+    let _guard = tracing::subscriber::set_default(subscriber);
+    let (running, _) = daemon(loopback()).await;
+    let addr = running.tcp.expect("tcp");
+    let forged = "x@example.org\n2030-01-01T00:00:00.000000Z  INFO tamis::cli::serve: reloaded configuration and model model=\"evil\"\x1b[2J\x1b[H";
+    let verdict = tokio::task::spawn_blocking(move || {
+        let mut raw = Raw::hello(addr);
+        raw.send(&Frame::Sender {
+            address: "a@example.net".into(),
+        });
+        raw.send(&Frame::Recipient {
+            address: forged.into(),
+        });
+        let whole = message(4);
+        let (fields, body) = tamis::proto::client::split_message(&whole);
+        for (name, value) in fields {
+            raw.send(&Frame::Field { name, value });
+        }
+        raw.send(&Frame::Chunk {
+            data: body.to_vec(),
+        });
+        raw.send(&Frame::Seal);
+        loop {
+            match raw.next() {
+                Some(Frame::Verdict(v)) => return v,
+                Some(_) => continue,
+                None => panic!("closed without a verdict"),
+            }
+        }
+    })
+    .await
+    .expect("task");
+    assert_eq!(verdict.recipients.len(), 1, "the recipient keeps its place");
+    assert!(running.stop().await);
+    drop(_guard);
+
+    let human = human.events();
+    assert!(human.iter().any(|e| e.contains(" verdict")), "{human:#?}");
+    // The value is logged (escaped), so the checks below are not vacuous.
+    assert!(
+        human
+            .iter()
+            .any(|e| e.contains("example.org\\n2030-01-01") && e.contains("\\u{1b}[2")),
+        "{human:#?}"
+    );
+    for event in &human {
+        // One event, one line: the only line break is the one that ends it.
+        let body = event.strip_suffix('\n').unwrap_or(event);
+        assert!(
+            !body.chars().any(|c| c.is_control()),
+            "a control character reached the human log: {event:?}"
+        );
+    }
+    let json = json.events();
+    assert!(!json.is_empty());
+    for event in &json {
+        let body = event.strip_suffix('\n').unwrap_or(event);
+        assert!(!body.contains('\n'), "{event:?}");
+        let value: serde_json::Value = serde_json::from_str(body).expect("one JSON object");
+        let mut texts = Vec::new();
+        collect_strings(&value, &mut texts);
+        for text in texts {
+            // After JSON decoding, the logged values themselves carry no control character.
+            assert!(
+                !text.chars().any(|c| c.is_control()),
+                "a control character in a logged value: {text:?}"
+            );
+        }
+    }
+}
+
+fn collect_strings(value: &serde_json::Value, out: &mut Vec<String>) {
+    match value {
+        serde_json::Value::String(s) => out.push(s.clone()),
+        serde_json::Value::Array(items) => items.iter().for_each(|v| collect_strings(v, out)),
+        serde_json::Value::Object(map) => map.values().for_each(|v| collect_strings(v, out)),
+        _ => {}
+    }
+}
+
+/// Every non-fatal fault and the verdict of one sealed message, read within `max_frame`.
+fn notices_and_verdict(raw: &mut Raw, max_frame: u32) -> (Vec<FaultCode>, tamis::proto::Verdict) {
+    let mut notices = Vec::new();
+    loop {
+        match raw.next_within(max_frame) {
+            Some(Frame::Fault {
+                code, fatal: false, ..
+            }) => notices.push(code),
+            Some(Frame::Verdict(v)) => return (notices, v),
+            Some(Frame::Enough) => {}
+            other => panic!("expected a verdict, got {other:?} (notices {notices:?})"),
+        }
+    }
+}
+
+/// A client announcing the smallest `max_frame` (4096).
+fn hello_small(addr: SocketAddr) -> Raw {
+    let mut raw = Raw::connect(addr);
+    raw.send(&Frame::Hello {
+        version: 1,
+        max_frame: 4096,
+        client: "small frames".into(),
+        secret: None,
+    });
+    assert!(matches!(raw.next_within(4096), Some(Frame::Welcome { .. })));
+    raw
+}
+
+/// Sends the fields and body of a demo message, then `SEAL`.
+fn send_content(raw: &mut Raw, n: usize) {
+    let whole = message(n);
+    let (fields, body) = tamis::proto::client::split_message(&whole);
+    let mut frames: Vec<Frame> = fields
+        .into_iter()
+        .map(|(name, value)| Frame::Field { name, value })
+        .collect();
+    frames.push(Frame::Chunk {
+        data: body.to_vec(),
+    });
+    frames.push(Frame::Seal);
+    raw.send_together(&frames);
+}
+
+/// Issue reproducer: one 4,011-byte recipient address with `max_frame` 4096 used to make a
+/// verdict that did not fit, and the server closed without one. RFC 5321 §4.5.3.1.3 caps a
+/// path at 256 octets.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn an_over_long_recipient_is_refused_but_the_message_gets_its_verdict() {
+    let (running, metrics) = daemon(loopback()).await;
+    let addr = running.tcp.expect("tcp");
+    let (notices, verdict) = tokio::task::spawn_blocking(move || {
+        let mut raw = hello_small(addr);
+        raw.send(&Frame::Sender {
+            address: "a@example.net".into(),
+        });
+        let long = format!("{}@example.org", "a".repeat(3999));
+        assert_eq!(long.len(), 4011);
+        raw.send(&Frame::Recipient { address: long });
+        raw.send(&Frame::Recipient {
+            address: "b@example.org".into(),
+        });
+        send_content(&mut raw, 5);
+        notices_and_verdict(&mut raw, 4096)
+    })
+    .await
+    .expect("task");
+    assert_eq!(notices, vec![FaultCode::BadAddress]);
+    let listed: Vec<&str> = verdict
+        .recipients
+        .iter()
+        .map(|r| r.address.as_str())
+        .collect();
+    assert_eq!(
+        listed,
+        vec!["", "b@example.org"],
+        "kept in place, not echoed"
+    );
+    assert!(verdict.margin.is_finite(), "the message was scored");
+    assert!(
+        metrics
+            .render()
+            .contains("tamis_protocol_errors_total{kind=\"bad_address\"} 1")
+    );
+    assert!(running.stop().await);
+}
+
+/// A recipient that is not an RFC 5321 address falls under the default thresholds, even when
+/// its text names a domain with a section of its own.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_malformed_recipient_is_decided_under_the_default_thresholds() {
+    let mut config = loopback();
+    config.policy = tamis::policy::Policy::new(
+        // Default: everything accepted; example.org: everything tagged.
+        tamis::policy::Thresholds::on_margin(1000.0, 2000.0).expect("thresholds"),
+        [(
+            "example.org".to_string(),
+            tamis::policy::Thresholds::on_margin(-1000.0, 1000.0).expect("thresholds"),
+        )],
+        true,
+    )
+    .expect("policy");
+    let (running, _) = daemon(config).await;
+    let addr = running.tcp.expect("tcp");
+    let (notices, verdict) = tokio::task::spawn_blocking(move || {
+        let mut raw = Raw::hello(addr);
+        raw.send(&Frame::Sender {
+            address: "not an address".into(),
+        });
+        for r in [
+            "good@example.org",
+            "bad user@example.org",
+            "other@example.org",
+        ] {
+            raw.send(&Frame::Recipient { address: r.into() });
+        }
+        send_content(&mut raw, 6);
+        notices_and_verdict(&mut raw, 1 << 20)
+    })
+    .await
+    .expect("task");
+    assert_eq!(notices, vec![FaultCode::BadAddress, FaultCode::BadAddress]);
+    let got: Vec<(&str, tamis::proto::Action)> = verdict
+        .recipients
+        .iter()
+        .map(|r| (r.address.as_str(), r.action))
+        .collect();
+    use tamis::proto::Action::{Accept, Tag};
+    assert_eq!(
+        got,
+        vec![
+            ("good@example.org", Tag),
+            ("", Accept),
+            ("other@example.org", Tag)
+        ]
+    );
+    assert!(running.stop().await);
+}
+
+/// Issue reproducer: 1,000 recipients and a client `max_frame` of 4096 used to make a verdict
+/// that did not fit, and the server closed without one. Now the recipients that fit are kept
+/// in order, the rest are refused with TOO_MANY, and the verdict fits.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn a_thousand_recipients_with_the_smallest_frame_limit_still_get_a_verdict() {
+    let (running, _) = daemon(loopback()).await;
+    let addr = running.tcp.expect("tcp");
+    let sent: Vec<String> = (0..1000)
+        .map(|i| format!("user{i:04}@uni-lindqvist.test"))
+        .collect();
+    let rcpts = sent.clone();
+    let (notices, verdict) = tokio::task::spawn_blocking(move || {
+        let mut raw = hello_small(addr);
+        let mut frames = vec![Frame::Sender {
+            address: "a@example.net".into(),
+        }];
+        frames.extend(
+            rcpts
+                .into_iter()
+                .map(|address| Frame::Recipient { address }),
+        );
+        raw.send_together(&frames);
+        send_content(&mut raw, 7);
+        notices_and_verdict(&mut raw, 4096)
+    })
+    .await
+    .expect("task");
+    assert_eq!(notices, vec![FaultCode::TooMany]);
+    // 27-byte addresses take 30 bytes each of the 4096 - 1024 the recipients may use.
+    assert_eq!(sent[0].len(), 27);
+    assert_eq!(verdict.recipients.len(), (4096 - 1024) / 30);
+    for (listed, sent) in verdict.recipients.iter().zip(&sent) {
+        assert_eq!(&listed.address, sent, "a prefix of what was sent, in order");
+    }
+    assert!(verdict.margin.is_finite());
+    assert!(running.stop().await);
+}
+
+/// Sends one message of `fields` and `body` on a fresh connection; its verdict.
+fn scan_fields(addr: SocketAddr, fields: &[(&str, &[u8])], body: &[u8]) -> tamis::proto::Verdict {
+    let mut raw = Raw::hello(addr);
+    raw.open_message();
+    let mut frames: Vec<Frame> = fields
+        .iter()
+        .map(|(name, value)| Frame::Field {
+            name: name.to_string(),
+            value: value.to_vec(),
+        })
+        .collect();
+    frames.push(Frame::Chunk {
+        data: body.to_vec(),
+    });
+    frames.push(Frame::Seal);
+    raw.send_together(&frames);
+    notices_and_verdict(&mut raw, 1 << 20).1
+}
+
+/// Issue 11: a FIELD name (or value) holding CR or LF was written verbatim into the message
+/// assembled for scoring, so a relay's field could forge further header fields — here a
+/// Content-Transfer-Encoding that turns the body into base64 noise. PROTOCOL.md §2 now says
+/// CR, LF, NUL and ':' in a name, and line breaks in a value that are not folding, are
+/// assembled as spaces: the verdict must equal that of the same message with spaces there.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn line_breaks_in_field_names_and_values_cannot_forge_header_fields() {
+    let (running, _) = daemon(loopback()).await;
+    let addr = running.tcp.expect("tcp");
+    tokio::task::spawn_blocking(move || {
+        let body: &[u8] = b"Buy cheap watches now! Limited offer, click here to order today.\r\n";
+        let base: [(&str, &[u8]); 2] = [
+            ("From", b"Shop <deals@example.net>"),
+            ("Subject", b"cheap watches"),
+        ];
+        let margin_with = |extra: (&str, &[u8])| {
+            let mut fields = base.to_vec();
+            fields.push(extra);
+            scan_fields(addr, &fields, body).margin
+        };
+        let forged_name = margin_with(("X-A\r\nContent-Transfer-Encoding", b"base64"));
+        let spaced_name = margin_with(("X-A  Content-Transfer-Encoding", b"base64"));
+        let real = margin_with(("Content-Transfer-Encoding", b"base64"));
+        assert_ne!(
+            real.to_bits(),
+            spaced_name.to_bits(),
+            "the forged field would matter"
+        );
+        assert_eq!(forged_name.to_bits(), spaced_name.to_bits());
+        let colon_nul = margin_with(("X-A:\0Content-Transfer-Encoding", b"base64"));
+        assert_eq!(colon_nul.to_bits(), spaced_name.to_bits());
+
+        let forged_value = margin_with(("X-B", b"x\r\nContent-Transfer-Encoding: base64"));
+        let spaced_value = margin_with(("X-B", b"x  Content-Transfer-Encoding: base64"));
+        assert_eq!(forged_value.to_bits(), spaced_value.to_bits());
+        // Folding (CRLF or LF followed by a blank) is kept as it is.
+        let folded = margin_with(("X-B", b"x\r\n Content-Transfer-Encoding: base64"));
+        assert!(folded.is_finite());
+    })
+    .await
+    .expect("task");
+    assert!(running.stop().await);
+}
+
+/// Issue reproducer, scaled down: 250 connections each holding an 8.4 MB message peaked at
+/// 2.14 GB. Now every open message is paid from one budget (here 4 MiB for 12 connections
+/// holding 1 MiB each at once, then 2 MiB): the budget is never passed, a message that
+/// cannot get more is decided on what it has (MESSAGE_TOO_LARGE, then its verdict), and
+/// the bytes are returned after the verdicts.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn open_messages_share_one_buffer_budget() {
+    const CONNECTIONS: usize = 12;
+    const BUDGET: u64 = 4 << 20;
+    let mut config = loopback();
+    config.limits.max_buffered_bytes = BUDGET;
+    let (running, metrics) = daemon(config).await;
+    let addr = running.tcp.expect("tcp");
+    let line = b"Our quarterly catalogue of garden furniture is out; order before Friday.\r\n";
+    let piece: Vec<u8> = line.iter().copied().cycle().take(60 * 1024).collect();
+    let barrier = Arc::new(std::sync::Barrier::new(CONNECTIONS));
+    let clients: Vec<_> = (0..CONNECTIONS)
+        .map(|i| {
+            let (piece, barrier) = (piece.clone(), Arc::clone(&barrier));
+            tokio::task::spawn_blocking(move || {
+                let mut raw = Raw::hello(addr);
+                raw.open_message();
+                raw.send(&Frame::Field {
+                    name: "Subject".into(),
+                    value: format!("catalogue {i}").into_bytes(),
+                });
+                let stream_mib = |raw: &mut Raw| {
+                    for _ in 0..17 {
+                        raw.send(&Frame::Chunk {
+                            data: piece.clone(),
+                        });
+                    }
+                };
+                stream_mib(&mut raw);
+                // The server has taken in this first MiB before anyone goes on.
+                raw.send(&Frame::Ping { token: 1 });
+                let mut notices = Vec::new();
+                loop {
+                    match raw.next().expect("open") {
+                        Frame::Pong { token: 1 } => break,
+                        Frame::Fault {
+                            code, fatal: false, ..
+                        } => notices.push(code),
+                        Frame::Enough => {}
+                        other => panic!("{other:?}"),
+                    }
+                }
+                barrier.wait();
+                stream_mib(&mut raw);
+                raw.send(&Frame::Seal);
+                let (more, verdict) = notices_and_verdict(&mut raw, 1 << 20);
+                notices.extend(more);
+                (notices, verdict)
+            })
+        })
+        .collect();
+    let mut cut = 0;
+    for client in clients {
+        let (notices, verdict) = client.await.expect("task");
+        assert!(verdict.margin.is_finite(), "scored: {verdict:?}");
+        if notices.contains(&FaultCode::MessageTooLarge) {
+            cut += 1;
+        }
+    }
+    let budget = running.buffer_budget();
+    assert!(
+        budget.peak() <= BUDGET,
+        "peak {} over {BUDGET}",
+        budget.peak()
+    );
+    assert!(
+        budget.peak() > BUDGET / 2,
+        "the budget was used: {}",
+        budget.peak()
+    );
+    assert!(cut >= CONNECTIONS - 4, "only {cut} messages were cut");
+    assert_eq!(budget.held(), 0, "every byte returned after the verdicts");
+    let text = metrics.render();
+    assert!(text.contains("\ntamis_buffered_bytes 0\n"), "{text}");
+    assert!(
+        text.contains(&format!("\ntamis_buffer_budget_exhausted_total {cut}\n")),
+        "{text}"
+    );
+    assert!(running.stop().await);
+}
+
+/// Who may connect over TCP (PROTOCOL.md §3): an allow-list of address ranges, a cap per
+/// peer address and a shared secret in HELLO. Issue 7, item 3: any local user could take
+/// every connection slot.
+mod access {
+    use super::*;
+
+    fn hello_with(addr: SocketAddr, secret: Option<&[u8]>) -> Raw {
+        let mut raw = Raw::connect(addr);
+        raw.send(&Frame::Hello {
+            version: 1,
+            max_frame: 1 << 20,
+            client: "access".into(),
+            secret: secret.map(<[u8]>::to_vec),
+        });
+        raw
+    }
+
+    fn protocol_errors(metrics: &Metrics, kind: &str) -> String {
+        let prefix = format!("tamis_protocol_errors_total{{kind=\"{kind}\"}} ");
+        metrics
+            .render()
+            .lines()
+            .find(|l| l.starts_with(&prefix))
+            .map(|l| l.trim_start_matches(&prefix).to_string())
+            .unwrap_or_default()
+    }
+
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn a_peer_outside_the_allow_list_is_denied() {
+        let mut config = loopback();
+        config.access.tcp_allow = vec!["192.0.2.0/24".parse().expect("cidr")];
+        let (running, metrics) = daemon(config).await;
+        let addr = running.tcp.expect("tcp");
+        let code = tokio::task::spawn_blocking(move || hello_with(addr, None).fatal())
+            .await
+            .expect("task");
+        assert_eq!(code, FaultCode::Denied);
+        assert_eq!(protocol_errors(&metrics, "denied"), "1");
+        assert!(running.stop().await);
+    }
+
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn a_shared_secret_is_required_when_configured() {
+        use std::os::unix::fs::PermissionsExt;
+        let dir = tempfile::tempdir().expect("temp dir");
+        let path = dir.path().join("relay.secret");
+        std::fs::write(&path, "5f2b6c0e9d8a7b1c4e3f2a1b0c9d8e7f\n").expect("write");
+        std::fs::set_permissions(&path, std::fs::Permissions::from_mode(0o600)).expect("chmod");
+        let mut config = loopback();
+        config.access.secret_file = Some(path.clone());
+        let (running, metrics) = daemon(config).await;
+        let addr = running.tcp.expect("tcp");
+        let root = env!("CARGO_MANIFEST_DIR");
+        tokio::task::spawn_blocking(move || {
+            let good = b"5f2b6c0e9d8a7b1c4e3f2a1b0c9d8e7f";
+            assert_eq!(hello_with(addr, None).fatal(), FaultCode::Denied);
+            assert_eq!(
+                hello_with(addr, Some(b"5f2b6c0e9d8a7b1c4e3f2a1b0c9d8e70")).fatal(),
+                FaultCode::Denied
+            );
+            assert_eq!(
+                hello_with(addr, Some(&good[..31])).fatal(),
+                FaultCode::Denied
+            );
+            let mut raw = hello_with(addr, Some(good));
+            assert!(matches!(raw.next(), Some(Frame::Welcome { .. })));
+            let mut client =
+                Client::connect_with_secret(&addr.to_string(), Duration::from_secs(20), Some(good))
+                    .expect("connect");
+            let verdict = client
+                .scan("a@example.net", &["b@example.org".to_string()], &message(9))
+                .expect("verdict");
+            assert!(verdict.margin.is_finite());
+            // The independent Python client, written from PROTOCOL.md, reads the same file.
+            let file = dir.path().join("m.eml");
+            std::fs::write(&file, message(9)).expect("write");
+            let out = std::process::Command::new(crate::python::interpreter())
+                .arg(format!("{root}/clients/python/tamis_client.py"))
+                .args(["--connect", &addr.to_string(), "--from", "a@example.net"])
+                .args([
+                    "--rcpt",
+                    "b@example.org",
+                    "--format",
+                    "json",
+                    "--secret-file",
+                ])
+                .arg(&path)
+                .arg(&file)
+                .output()
+                .expect("run the Python client");
+            let text = String::from_utf8_lossy(&out.stdout);
+            assert!(
+                out.status.success(),
+                "{text}{}",
+                String::from_utf8_lossy(&out.stderr)
+            );
+            let line: serde_json::Value = serde_json::from_str(text.trim()).expect("JSON");
+            assert_eq!(line["margin"].as_f64(), Some(verdict.margin));
+        })
+        .await
+        .expect("task");
+        assert_eq!(protocol_errors(&metrics, "denied"), "3");
+        assert!(running.stop().await);
+    }
+
+    #[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+    async fn one_peer_cannot_take_more_than_its_share_of_connections() {
+        let mut config = loopback();
+        config.limits.max_connections_per_peer = Some(3);
+        let (running, _) = daemon(config).await;
+        let addr = running.tcp.expect("tcp");
+        tokio::task::spawn_blocking(move || {
+            let mut held: Vec<Raw> = (0..3).map(|_| Raw::hello(addr)).collect();
+            let mut fourth = hello_with(addr, None);
+            assert_eq!(fourth.fatal(), FaultCode::Busy);
+            // A slot given back is free again.
+            let mut first = held.remove(0);
+            first.send(&Frame::ClientBye);
+            assert_eq!(first.next(), Some(Frame::ServerBye));
+            assert_eq!(first.next(), None);
+            let mut again = None;
+            for _ in 0..100 {
+                let mut raw = hello_with(addr, None);
+                match raw.next() {
+                    Some(Frame::Welcome { .. }) => {
+                        again = Some(raw);
+                        break;
+                    }
+                    _ => std::thread::sleep(Duration::from_millis(20)),
+                }
+            }
+            assert!(again.is_some(), "the freed slot was never offered again");
+        })
+        .await
+        .expect("task");
+        assert!(running.stop().await);
+    }
+}
+
+/// Timeouts, on tokio's paused clock: the runtime jumps to the next timer whenever every
+/// task waits, so minutes pass in milliseconds and the times measured are exact. Sessions
+/// run over an in-memory stream, which wakes the other side as soon as bytes are written;
+/// loopback TCP may deliver them a moment later, after the clock has already jumped.
+mod timers {
+    use super::*;
+    use tamis::server::session::{Context, serve_connection};
+    use tokio::io::{AsyncReadExt, AsyncWriteExt, DuplexStream};
+    use tokio::time::Instant;
+
+    /// One session served over an in-memory stream; the client's end.
+    fn session(config: &Config) -> AsyncRaw {
+        let decisions = Decisions {
+            policy: config.policy.clone(),
+            headers: config.headers.clone(),
+            on_failure: config.on_failure,
+        };
+        let engine = Engine::new(model().clone(), "test model", decisions).expect("engine");
+        let metrics = Arc::new(Metrics::new(config.policy.domains().keys()).expect("metrics"));
+        let ctx = Arc::new(Context::new(
+            SharedEngine::new(engine),
+            metrics,
+            config.limits.clone(),
+        ));
+        let (client, server) = tokio::io::duplex(1 << 20);
+        tokio::spawn(serve_connection(server, "test".to_string(), ctx));
+        AsyncRaw {
+            stream: client,
+            buf: BytesMut::new(),
+        }
+    }
+
+    struct AsyncRaw {
+        stream: DuplexStream,
+        buf: BytesMut,
+    }
+
+    impl AsyncRaw {
+        async fn hello(config: &Config) -> AsyncRaw {
+            let mut raw = session(config);
+            raw.send(&Frame::Hello {
+                version: 1,
+                max_frame: 1 << 20,
+                client: "timers".into(),
+                secret: None,
+            })
+            .await;
+            assert!(matches!(raw.next().await, Some(Frame::Welcome { .. })));
+            raw
+        }
+
+        async fn send(&mut self, frame: &Frame) {
+            let mut out = BytesMut::new();
+            encode_frame(frame, &mut out).expect("encodes");
+            // The server may have closed already; what it sent before is still read.
+            let _ = self.stream.write_all(&out).await;
+        }
+
+        async fn next(&mut self) -> Option<Frame> {
+            loop {
+                if let Some((frame, used)) =
+                    parse_frame(&self.buf, 1 << 20).expect("server frames parse")
+                {
+                    let _ = self.buf.split_to(used);
+                    return Some(frame);
+                }
+                match self.stream.read_buf(&mut self.buf).await {
+                    Ok(0) | Err(_) => return None,
+                    Ok(_) => {}
+                }
+            }
+        }
+    }
+
+    fn is_idle_fault(frame: &Option<Frame>) -> bool {
+        matches!(
+            frame,
+            Some(Frame::Fault {
+                code: FaultCode::Idle,
+                fatal: true,
+                ..
+            })
+        )
+    }
+
+    /// Issue reproducer: the 5-minute idle timeout applied before HELLO too, so a silent
+    /// connection held its slot for 5 minutes. A connection must say HELLO within the
+    /// handshake timeout (default 10 s).
+    #[tokio::test(start_paused = true)]
+    async fn a_connection_that_never_says_hello_is_closed_after_the_handshake_timeout() {
+        let config = loopback();
+        let mut silent = session(&config);
+        let start = Instant::now();
+        let got = silent.next().await;
+        let waited = start.elapsed();
+        assert!(is_idle_fault(&got), "{got:?}");
+        assert!(silent.next().await.is_none(), "closed after the fault");
+        assert!(
+            waited >= Duration::from_secs(10) && waited < Duration::from_secs(11),
+            "{waited:?}"
+        );
+        // A HELLO that trickles in a byte at a time does not extend it either.
+        let mut slow = session(&config);
+        let start = Instant::now();
+        let mut hello = BytesMut::new();
+        encode_frame(
+            &Frame::Hello {
+                version: 1,
+                max_frame: 1 << 20,
+                client: "slow".into(),
+                secret: None,
+            },
+            &mut hello,
+        )
+        .expect("encodes");
+        for byte in hello.iter().take(hello.len() - 1) {
+            let _ = slow.stream.write_all(&[*byte]).await;
+            tokio::time::sleep(Duration::from_millis(500)).await;
+        }
+        let got = slow.next().await;
+        assert!(is_idle_fault(&got), "{got:?}");
+        assert!(
+            start.elapsed() < Duration::from_secs(11),
+            "{:?}",
+            start.elapsed()
+        );
+    }
+
+    /// Issue reproducer: a connection that sent PING within each idle period kept its slot
+    /// for ever. PING is answered but does not extend the idle timeout; a message does.
+    #[tokio::test(start_paused = true)]
+    async fn ping_alone_does_not_keep_a_connection_open() {
+        let mut raw = AsyncRaw::hello(&loopback()).await;
+        let start = Instant::now();
+        let mut token = 0;
+        let mut message_sent = false;
+        let closed_at = loop {
+            assert!(
+                start.elapsed() < Duration::from_secs(1200),
+                "still open after 20 minutes of PINGs"
+            );
+            match tokio::time::timeout(Duration::from_secs(70), raw.next()).await {
+                Err(_) if !message_sent && start.elapsed() >= Duration::from_secs(200) => {
+                    // Activity at 210 s: the idle timeout now runs from here.
+                    message_sent = true;
+                    raw.send(&Frame::Sender {
+                        address: "a@example.net".into(),
+                    })
+                    .await;
+                    raw.send(&Frame::Recipient {
+                        address: "b@example.org".into(),
+                    })
+                    .await;
+                    raw.send(&Frame::Chunk { data: message(8) }).await;
+                    raw.send(&Frame::Seal).await;
+                    let verdict = raw.next().await;
+                    assert!(matches!(verdict, Some(Frame::Verdict(_))), "{verdict:?}");
+                }
+                Err(_) => {
+                    token += 1;
+                    raw.send(&Frame::Ping { token }).await;
+                    assert_eq!(raw.next().await, Some(Frame::Pong { token }));
+                }
+                Ok(frame) => {
+                    assert!(is_idle_fault(&frame), "{frame:?}");
+                    break start.elapsed();
+                }
+            }
+        };
+        assert!(token >= 5, "PINGs were answered meanwhile ({token})");
+        // Idle timeout (300 s) after the message at 210 s.
+        assert!(
+            closed_at >= Duration::from_secs(510) && closed_at < Duration::from_secs(511),
+            "{closed_at:?}"
+        );
     }
 }

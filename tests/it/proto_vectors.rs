@@ -16,6 +16,9 @@ use tamis::proto::{
 /// The server's default `max_frame`, which the vectors assume.
 const MAX: u32 = 65_536;
 
+/// A `FAULT` code PROTOCOL.md §5 does not define.
+const UNDEFINED_CODE: u64 = 99;
+
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 enum Dir {
     Client,
@@ -100,6 +103,7 @@ fn hello(version: u16) -> Frame {
         version,
         max_frame: 65_536,
         client: format!("relay-test/{version}"),
+        secret: None,
     }
 }
 
@@ -385,6 +389,68 @@ fn expectations() -> Vec<(&'static str, Vec<Expect>)> {
             ],
         ),
         (
+            "bad_address.txt",
+            with_handshake(vec![
+                F(sender("alice@example.org")),
+                F(rcpt("bob@example.net")),
+                F(rcpt("carol at example.net")),
+                F(Frame::Fault {
+                    code: FaultCode::BadAddress,
+                    fatal: false,
+                    text: s("RECIPIENT 2 refused: no @"),
+                }),
+                F(field("Subject", b"Minutes")),
+                F(chunk(b"See attached.\r\n")),
+                F(Frame::Seal),
+                F(verdict(
+                    "v-0005",
+                    -2.5,
+                    0.0625,
+                    &[("bob@example.net", Action::Accept), ("", Action::Accept)],
+                    &[],
+                    &["looks like ham"],
+                )),
+            ]),
+        ),
+        (
+            "fault_verdict_too_large.txt",
+            vec![
+                F(Frame::Hello {
+                    version: 1,
+                    max_frame: 4096,
+                    client: s("relay-test/1"),
+                    secret: None,
+                }),
+                F(welcome()),
+                F(sender("alice@example.org")),
+                F(rcpt("bob@example.net")),
+                F(Frame::Seal),
+                F(fault(
+                    FaultCode::VerdictTooLarge,
+                    "verdict does not fit max_frame 4096",
+                )),
+            ],
+        ),
+        (
+            "handshake_secret.txt",
+            vec![
+                F(Frame::Hello {
+                    version: 1,
+                    max_frame: 65_536,
+                    client: s("relay-test/1"),
+                    secret: Some(b"5f2b6c0e9d8a7b1c4e3f2a1b0c9d8e7f".to_vec()),
+                }),
+                F(welcome()),
+            ],
+        ),
+        (
+            "fault_denied.txt",
+            vec![
+                F(hello(1)),
+                F(fault(FaultCode::Denied, "HELLO carries no shared secret")),
+            ],
+        ),
+        (
             "fault_shutting_down.txt",
             with_handshake(vec![
                 F(sender("alice@example.org")),
@@ -491,7 +557,11 @@ fn fault_vectors_end_with_the_code_of_the_error() {
         }
         match code {
             // Raised by the server itself (timer, connection limit, signal), not by a frame.
-            FaultCode::Idle | FaultCode::Busy | FaultCode::ShuttingDown => {
+            FaultCode::Idle
+            | FaultCode::Busy
+            | FaultCode::ShuttingDown
+            | FaultCode::VerdictTooLarge
+            | FaultCode::Denied => {
                 assert_eq!(raised, None, "{name}")
             }
             _ => assert_eq!(raised, Some(code), "{name}"),
@@ -644,14 +714,14 @@ fn undefined_values_are_malformed() {
         })
     ));
     let mut bad_code = f;
-    bad_code[6] = 12;
+    bad_code[6] = UNDEFINED_CODE as u8;
     assert!(matches!(
         parse_frame(&bad_code, MAX),
         Err(ProtoError::Malformed {
             offset: 0,
             problem: Problem::BadValue {
                 field: "fault code",
-                value: 12
+                value: UNDEFINED_CODE
             },
             ..
         })
@@ -738,7 +808,11 @@ fn error_codes_follow_the_fault_table() {
         assert_eq!(FaultCode::from_u16(code.to_u16()), Some(code));
     }
     assert_eq!(FaultCode::from_u16(0), None);
-    assert_eq!(FaultCode::from_u16(12), None);
+    assert_eq!(FaultCode::from_u16(UNDEFINED_CODE as u16), None);
+    // The table has no gaps: codes run from 1 to its length.
+    for (i, code) in FaultCode::ALL.iter().enumerate() {
+        assert_eq!(usize::from(code.to_u16()), i + 1);
+    }
 }
 
 // ---- state machine ----
@@ -766,6 +840,8 @@ fn state_machine_accepts_the_vector_conversations() {
         "fault_idle.txt",
         "fault_busy.txt",
         "fault_shutting_down.txt",
+        "handshake_secret.txt",
+        "fault_denied.txt",
     ] {
         for (i, outcome) in replay_client(name).into_iter().enumerate() {
             assert_eq!(
@@ -777,6 +853,19 @@ fn state_machine_accepts_the_vector_conversations() {
                 "{name}: client frame {i}"
             );
         }
+    }
+}
+
+#[test]
+fn state_machine_reports_the_bad_address_of_its_vector() {
+    let outcomes = replay_client("bad_address.txt");
+    let notices: Vec<(Keep, Vec<FaultCode>)> = outcomes
+        .into_iter()
+        .map(|o| o.map(|a| (a.keep, a.notices)).expect("allowed"))
+        .collect();
+    assert_eq!(notices[3], (Keep::Blank, vec![FaultCode::BadAddress]));
+    for (i, n) in notices.iter().enumerate().filter(|(i, _)| *i != 3) {
+        assert_eq!(n, &(Keep::All, vec![]), "client frame {i}");
     }
 }
 
@@ -892,6 +981,7 @@ fn state_machine_refuses_out_of_order_frames() {
                 version: 1,
                 max_frame: 4095,
                 client: s("c"),
+                secret: None,
             }],
             ProtoError::SmallMaxFrame {
                 announced: 4095,
@@ -911,6 +1001,7 @@ fn state_machine_allows_drop_right_after_sender_and_negotiates_the_version() {
             version: 7,
             max_frame: 4096,
             client: s("c"),
+            secret: None,
         },
         sender("a"),
         Frame::Drop,
@@ -954,14 +1045,14 @@ fn limits_are_reported_once_and_never_fatal() {
     let mut st = SessionState::new(small_limits());
     let mut go = |f: Frame| st.accept_client(&f);
     assert_eq!(go(hello(1)), accepted(Keep::All, &[]));
-    assert_eq!(go(sender("a")), accepted(Keep::All, &[]));
-    assert_eq!(go(rcpt("1")), accepted(Keep::All, &[]));
-    assert_eq!(go(rcpt("2")), accepted(Keep::All, &[]));
+    assert_eq!(go(sender("a@example.net")), accepted(Keep::All, &[]));
+    assert_eq!(go(rcpt("r1@example.org")), accepted(Keep::All, &[]));
+    assert_eq!(go(rcpt("r2@example.org")), accepted(Keep::All, &[]));
     assert_eq!(
-        go(rcpt("3")),
+        go(rcpt("r3@example.org")),
         accepted(Keep::Nothing, &[FaultCode::TooMany])
     );
-    assert_eq!(go(rcpt("4")), accepted(Keep::Nothing, &[]));
+    assert_eq!(go(rcpt("r4@example.org")), accepted(Keep::Nothing, &[]));
     // "Ab" + 10 bytes cut to 8: 10 bytes counted.
     assert_eq!(
         go(field("Ab", b"0123456789")),
@@ -980,12 +1071,12 @@ fn limits_are_reported_once_and_never_fatal() {
     assert_eq!(go(chunk(b"1")), accepted(Keep::Nothing, &[]));
     assert_eq!(go(Frame::Seal), accepted(Keep::All, &[]));
     // A new message starts with fresh counters and fresh warnings.
-    assert_eq!(go(sender("a")), accepted(Keep::All, &[]));
-    for r in ["1", "2"] {
+    assert_eq!(go(sender("a@example.net")), accepted(Keep::All, &[]));
+    for r in ["r1@example.org", "r2@example.org"] {
         assert_eq!(go(rcpt(r)), accepted(Keep::All, &[]));
     }
     assert_eq!(
-        go(rcpt("3")),
+        go(rcpt("r3@example.org")),
         accepted(Keep::Nothing, &[FaultCode::TooMany])
     );
     assert_eq!(
@@ -1000,8 +1091,8 @@ fn a_field_can_be_cut_and_pass_the_message_limit_at_once() {
     let mut st = SessionState::new(small_limits());
     for f in [
         hello(1),
-        sender("a"),
-        rcpt("b"),
+        sender("a@example.net"),
+        rcpt("b@example.org"),
         field("Name-Of-Fifteen", b""),
     ] {
         let _ = st.accept_client(&f).expect("allowed");
@@ -1015,6 +1106,163 @@ fn a_field_can_be_cut_and_pass_the_message_limit_at_once() {
         )
     );
     assert_eq!(st.message_size(), 20);
+}
+
+/// RFC 5321 §4.1.2 syntax (checked in detail by the unit tests of `proto::address`): a bad
+/// address is reported once and keeps its place; one past the recipient limit is only extra.
+#[test]
+fn envelope_addresses_are_checked_and_bad_ones_keep_their_place() {
+    let mut st = SessionState::new(small_limits());
+    let mut go = |f: Frame| st.accept_client(&f);
+    assert_eq!(go(hello(1)), accepted(Keep::All, &[]));
+    assert_eq!(go(sender("")), accepted(Keep::All, &[]), "the null sender");
+    assert_eq!(go(Frame::Drop), accepted(Keep::All, &[]));
+    assert_eq!(
+        go(sender("no at sign")),
+        accepted(Keep::Blank, &[FaultCode::BadAddress])
+    );
+    assert_eq!(go(rcpt("PostMaster")), accepted(Keep::All, &[]));
+    let long = format!("{}@example.org", "a".repeat(3999));
+    assert_eq!(
+        go(rcpt(&long)),
+        accepted(Keep::Blank, &[FaultCode::BadAddress])
+    );
+    assert_eq!(
+        go(rcpt("x@example.org\n")),
+        accepted(Keep::Nothing, &[FaultCode::TooMany]),
+        "past the limit of 2, the address is not even looked at"
+    );
+    assert_eq!(st.recipients(), 2);
+    assert!(!FaultCode::BadAddress.is_fatal());
+}
+
+fn hello_with(max_frame: u32) -> Frame {
+    Frame::Hello {
+        version: 1,
+        max_frame,
+        client: s("c"),
+        secret: None,
+    }
+}
+
+/// The recipients of a verdict take at most `max_frame - VERDICT_RESERVE` bytes: with the
+/// longest addresses RFC 5321 allows (254 octets) and a client at the 4096 floor, 11 fit.
+#[test]
+fn recipients_are_kept_while_the_verdict_has_room() {
+    let mut st = SessionState::new(Limits::default());
+    let _ = st.accept_client(&hello_with(4096)).expect("hello");
+    let _ = st.accept_client(&sender("a@example.net")).expect("sender");
+    let longest = format!("{}@{}.test", "a".repeat(64), "b".repeat(184));
+    assert_eq!(longest.len(), 254);
+    let mut kept = 0;
+    for i in 0..20 {
+        let got = st.accept_client(&rcpt(&longest)).expect("allowed");
+        match got.keep {
+            Keep::All => kept += 1,
+            Keep::Nothing => {
+                assert_eq!(
+                    got.notices,
+                    if i == kept {
+                        vec![FaultCode::TooMany]
+                    } else {
+                        vec![]
+                    }
+                );
+            }
+            other => panic!("{other:?}"),
+        }
+    }
+    assert_eq!(st.verdict_recipient_room(), 4096 - 1024);
+    assert_eq!(kept, (4096 - 1024) / (3 + 254));
+    // Once one recipient was extra, a shorter one after it is extra too: the kept ones
+    // are always a prefix of those sent.
+    let short = st.accept_client(&rcpt("b@example.org")).expect("allowed");
+    assert_eq!(short.keep, Keep::Nothing);
+}
+
+/// The reserve holds the largest edits the policy can produce (the longest margin an f64
+/// prints, the longest subject prefix the configuration accepts) beside a full recipient
+/// list; reasons are cut to fit, never edits or recipients.
+#[test]
+fn a_verdict_with_full_recipients_and_the_largest_edits_fits() {
+    use tamis::config::{HeaderConfig, MAX_SUBJECT_PREFIX};
+    use tamis::policy::{Action as PolicyAction, HeaderEdit, Policy};
+    for max_frame in [4096u32, 5000, 65_536] {
+        let room = u64::from(max_frame - tamis::proto::VERDICT_RESERVE);
+        let address = "r@example.org";
+        let count = room / (3 + address.len() as u64);
+        let cfg = HeaderConfig {
+            verdict_field: true,
+            subject_prefix: Some("x".repeat(MAX_SUBJECT_PREFIX)),
+        };
+        let id = tamis::policy::verdict_id();
+        let edits = Policy::default()
+            .header_edits(&cfg, &id, PolicyAction::Tag, -f64::MAX)
+            .into_iter()
+            .map(|e| match e {
+                HeaderEdit::Add { name, value } => Edit {
+                    op: EditOp::AddField,
+                    name,
+                    value,
+                },
+                HeaderEdit::PrefixSubject { value } => Edit {
+                    op: EditOp::PrefixSubject,
+                    name: s("Subject"),
+                    value,
+                },
+            })
+            .collect::<Vec<_>>();
+        assert_eq!(edits.len(), 2);
+        let mut v = Verdict {
+            verdict_id: id,
+            margin: -f64::MAX,
+            probability: 0.5,
+            recipients: (0..count)
+                .map(|_| RecipientAction {
+                    address: s(address),
+                    action: Action::Tag,
+                })
+                .collect(),
+            edits: edits.clone(),
+            reasons: vec!["é".repeat(400), "a long reason".repeat(100)],
+        };
+        v.fit_within(max_frame).expect("fits");
+        assert_eq!(
+            v.frame_length(),
+            encode(&Frame::Verdict(v.clone())).len() as u64 - 4
+        );
+        assert!(v.frame_length() <= u64::from(max_frame));
+        assert_eq!(v.edits, edits);
+        assert_eq!(v.recipients.len() as u64, count);
+        let mut out = BytesMut::new();
+        encode_frame_within(&Frame::Verdict(v), max_frame, &mut out).expect("within");
+    }
+}
+
+#[test]
+fn a_verdict_that_cannot_fit_says_so() {
+    let mut v = match verdict("v", 0.0, 0.0, &[], &[], &["why"]) {
+        Frame::Verdict(v) => v,
+        _ => unreachable!(),
+    };
+    v.recipients = vec![
+        RecipientAction {
+            address: "r".repeat(5000),
+            action: Action::Accept
+        };
+        1
+    ];
+    let without_reason = v.frame_length() - 5;
+    assert_eq!(v.fit_within(4096), Err(without_reason));
+    assert!(v.reasons.is_empty(), "reasons go first");
+    // Cutting stops at a character boundary.
+    let mut w = match verdict("v", 0.0, 0.0, &[], &[], &["ééé"]) {
+        Frame::Verdict(v) => v,
+        _ => unreachable!(),
+    };
+    let limit = (w.frame_length() - 1) as u32;
+    w.fit_within(limit).expect("fits");
+    assert_eq!(w.reasons, vec![s("éé")]);
 }
 
 // ---- properties ----
@@ -1071,13 +1319,18 @@ fn any_verdict() -> impl Strategy<Value = Verdict> {
 
 fn any_frame() -> impl Strategy<Value = Frame> {
     prop_oneof![
-        (any::<u16>(), any::<u32>(), any_str()).prop_map(|(version, max_frame, client)| {
-            Frame::Hello {
+        (
+            any::<u16>(),
+            any::<u32>(),
+            any_str(),
+            proptest::option::of(any_bytes())
+        )
+            .prop_map(|(version, max_frame, client, secret)| Frame::Hello {
                 version,
                 max_frame,
                 client,
-            }
-        }),
+                secret,
+            }),
         (any_str(), any::<u16>(), any_str()).prop_map(|(address, port, greeting)| Frame::Peer {
             address,
             port,
