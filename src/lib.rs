@@ -14,6 +14,9 @@
 //!    and scoring so both see exactly the same vector.
 //!
 //! 5. [`proto`] — the relay protocol's frames, codec and state machine (`proto/PROTOCOL.md`).
+//! 6. [`store`] — what is kept after a verdict: the verdict journal, held (quarantined)
+//!    messages, reports about verdicts, and the per-domain false-positive figures built
+//!    from them; SQLite by default, behind a trait.
 //!
 //! [`demo`] generates the invented demonstration corpus used by examples and benchmarks.
 #![forbid(unsafe_code)]
@@ -31,6 +34,7 @@ pub mod policy;
 pub mod proto;
 pub mod rng;
 pub mod server;
+pub mod store;
 pub mod text;
 pub mod train;
 
