@@ -54,9 +54,9 @@ impl Ctx<'_> {
         let path = self.path.to_path_buf();
         let operation = self.operation;
         let detail = e.to_string();
-        let code = match &e {
-            rusqlite::Error::SqliteFailure(inner, _) => Some(inner.code),
-            _ => None,
+        let (code, extended) = match &e {
+            rusqlite::Error::SqliteFailure(inner, _) => (Some(inner.code), inner.extended_code),
+            _ => (None, 0),
         };
         match code {
             Some(ErrorCode::DatabaseBusy | ErrorCode::DatabaseLocked) => StoreError::Busy {
@@ -82,7 +82,15 @@ impl Ctx<'_> {
             Some(ErrorCode::SystemIoFailure) => StoreError::Io {
                 path,
                 operation,
-                detail,
+                detail: match extended {
+                    rusqlite::ffi::SQLITE_IOERR_WRITE => format!(
+                        "{detail}: a write was refused, as when the disk is full or the file-size limit is reached"
+                    ),
+                    rusqlite::ffi::SQLITE_IOERR_FSYNC => {
+                        format!("{detail}: flushing to disk failed")
+                    }
+                    _ => detail,
+                },
             },
             _ => StoreError::Sqlite {
                 path,
