@@ -35,7 +35,9 @@ pub struct DomainOutcome {
     pub domain: String,
     /// How many of the message's recipients are in this domain.
     pub recipients: u32,
-    /// The action taken.
+    /// The action sent to the relay (after the failure mode, if the message could not be
+    /// scanned or held: a quarantine that could not be held is journaled as what was sent
+    /// instead).
     #[serde(serialize_with = "action_name")]
     pub action: Action,
     /// The action the policy would have taken with `tag_only` off: equal to `action`
