@@ -26,8 +26,9 @@
 //!   as unmatched and never counted ([`ReportStatus`]).
 //!
 //! The figures per domain and their exact definitions are in [`figures`]; the audit
-//! sample's method in [`sample`].
+//! sample's method in [`sample`]; [`JournalWriter`] batches journal entries for the daemon.
 
+pub mod batch;
 pub mod blob;
 pub mod error;
 pub mod figures;
@@ -38,6 +39,7 @@ pub mod sqlite;
 use std::path::Path;
 use std::time::Duration;
 
+pub use batch::{BatchSettings, JournalWriter};
 pub use error::StoreError;
 pub use figures::{DomainFigures, Rate, TargetCheck};
 pub use record::{

@@ -21,9 +21,9 @@ use tamis::rng::SplitMix64;
 use tamis::store::figures::MIN_LEGITIMATE;
 use tamis::store::sqlite::schema::SCHEMA_VERSION;
 use tamis::store::{
-    Claim, DomainOutcome, HeldFilter, HeldState, Hold, HoldOutcome, JournalEntry, MessageKey,
-    NewReport, ReleaseOutcome, ReportKind, ReportSource, ReportStatus, SqliteStore, Store,
-    StoreError, StoreOptions, TargetCheck,
+    BatchSettings, Claim, DomainOutcome, HeldFilter, HeldState, Hold, HoldOutcome, JournalEntry,
+    JournalWriter, MessageKey, NewReport, ReleaseOutcome, ReportKind, ReportSource, ReportStatus,
+    SqliteStore, Store, StoreError, StoreOptions, TargetCheck,
 };
 
 use crate::python;
@@ -1401,6 +1401,122 @@ for line in sys.stdin:
             rate.lower
         );
     }
+}
+
+// --- Journal writer ------------------------------------------------------------------
+
+#[test]
+fn the_journal_writer_batches_from_many_threads_and_loses_nothing() {
+    let dir = tempfile::tempdir().expect("temp dir");
+    let store: Arc<dyn Store> = Arc::new(open(&dir.path().join("store.sqlite")));
+    let errors = Arc::new(std::sync::Mutex::new(Vec::new()));
+    let seen = errors.clone();
+    let writer = JournalWriter::start(
+        store.clone(),
+        BatchSettings {
+            queue: 20_000,
+            ..BatchSettings::default()
+        },
+        Box::new(move |e: &StoreError, n| seen.lock().expect("lock").push((e.kind(), n))),
+    )
+    .expect("start");
+    let writer = Arc::new(writer);
+    let threads: Vec<_> = (0..4)
+        .map(|t| {
+            let writer = writer.clone();
+            std::thread::spawn(move || {
+                for i in 0..2500 {
+                    let e = entry(
+                        &format!("W{t}-{i}"),
+                        T0,
+                        0.0,
+                        &[("a.test", Action::Accept, Action::Accept)],
+                    );
+                    assert!(writer.submit(e).is_ok(), "the queue has room");
+                }
+            })
+        })
+        .collect();
+    for t in threads {
+        t.join().expect("submitter");
+    }
+    // One invalid entry costs only itself.
+    assert!(
+        writer
+            .submit(entry(
+                "",
+                T0,
+                0.0,
+                &[("a.test", Action::Accept, Action::Accept)]
+            ))
+            .is_ok()
+    );
+    Arc::try_unwrap(writer).expect("sole owner").close();
+    let f = store.figures(T0, Some("a.test")).expect("figures");
+    assert_eq!(f[0].messages(), 10_000);
+    assert_eq!(*errors.lock().expect("lock"), vec![("invalid", 1)]);
+}
+
+#[test]
+fn the_journal_writer_never_blocks_on_a_locked_store() {
+    let dir = tempfile::tempdir().expect("temp dir");
+    let path = dir.path().join("store.sqlite");
+    let store: Arc<dyn Store> = Arc::new(
+        SqliteStore::open(
+            &path,
+            StoreOptions {
+                busy_timeout: Duration::from_millis(400),
+                ..options()
+            },
+        )
+        .expect("open"),
+    );
+    let lost = Arc::new(std::sync::atomic::AtomicUsize::new(0));
+    let counter = lost.clone();
+    let writer = JournalWriter::start(
+        store.clone(),
+        BatchSettings {
+            max_batch: 8,
+            max_delay: Duration::from_millis(5),
+            queue: 4,
+        },
+        Box::new(move |e: &StoreError, n| {
+            assert!(matches!(e, StoreError::Busy { .. }), "{e}");
+            counter.fetch_add(n, std::sync::atomic::Ordering::SeqCst);
+        }),
+    )
+    .expect("start");
+    let other = rusqlite::Connection::open(&path).expect("another connection");
+    other.execute_batch("BEGIN EXCLUSIVE").expect("lock");
+    let started = Instant::now();
+    let mut refused = 0;
+    for i in 0..50 {
+        let e = entry(
+            &format!("X{i}"),
+            T0,
+            0.0,
+            &[("a.test", Action::Accept, Action::Accept)],
+        );
+        if writer.submit(e).is_err() {
+            refused += 1;
+        }
+    }
+    assert!(
+        started.elapsed() < Duration::from_millis(300),
+        "submit waited for the store"
+    );
+    assert!(refused > 0, "a full queue refuses instead of blocking");
+    std::thread::sleep(Duration::from_millis(500));
+    other.execute_batch("ROLLBACK").expect("unlock");
+    writer.close();
+    let written = store.figures(T0, Some("a.test")).expect("figures")[0].messages() as usize;
+    let lost = lost.load(std::sync::atomic::Ordering::SeqCst);
+    assert!(lost > 0, "the lock cost a batch");
+    assert_eq!(
+        written + lost + refused,
+        50,
+        "every entry is written, reported lost or refused"
+    );
 }
 
 // --- Audit sample and retention ------------------------------------------------------
