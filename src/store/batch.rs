@@ -41,6 +41,17 @@ impl Default for BatchSettings {
     }
 }
 
+/// Why [`JournalWriter::submit`] refused an entry.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, thiserror::Error)]
+pub enum Refused {
+    /// The queue is full: the store is slower than the mail, or stuck.
+    #[error("the journal queue is full; the entry was dropped (is the store slow or locked?)")]
+    QueueFull,
+    /// The writer thread has stopped.
+    #[error("the journal writer has stopped; the entry was dropped")]
+    Stopped,
+}
+
 /// Called on the writer thread when entries could not be written: the error and how many
 /// entries were lost to it.
 pub type OnError = Box<dyn Fn(&StoreError, usize) + Send>;
@@ -77,14 +88,15 @@ impl JournalWriter {
         })
     }
 
-    /// Queues an entry without waiting; hands it back when the queue is full or the
-    /// writer has stopped.
-    pub fn submit(&self, entry: JournalEntry) -> Result<(), JournalEntry> {
+    /// Queues an entry without waiting; refuses it (for the caller to count as dropped)
+    /// when the queue is full or the writer has stopped.
+    pub fn submit(&self, entry: JournalEntry) -> Result<(), Refused> {
         match &self.sender {
             Some(sender) => sender.try_send(entry).map_err(|e| match e {
-                TrySendError::Full(entry) | TrySendError::Disconnected(entry) => entry,
+                TrySendError::Full(_) => Refused::QueueFull,
+                TrySendError::Disconnected(_) => Refused::Stopped,
             }),
-            None => Err(entry),
+            None => Err(Refused::Stopped),
         }
     }
 
