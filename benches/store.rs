@@ -15,6 +15,8 @@ use tamis::store::{
 };
 
 const ROWS: usize = 1_000_000;
+/// Rows when the bench runs as a test (`cargo test --all-targets`), to check it works.
+const TEST_ROWS: usize = 10_000;
 const DOMAINS: usize = 20;
 const NOW: i64 = 1_800_000_000;
 const DAY: i64 = 86_400;
@@ -57,18 +59,25 @@ fn bench(c: &mut Criterion) {
     let path = dir.path().join("store.sqlite");
     let store = SqliteStore::open(&path, StoreOptions::default()).expect("open");
     let mut rng = SplitMix64::new(1);
+    // `cargo bench` passes `--bench`; without it this is a quick run as a test.
+    let rows = if std::env::args().any(|a| a == "--bench") {
+        ROWS
+    } else {
+        TEST_ROWS
+    };
     let mut batch = Vec::with_capacity(10_000);
-    for i in 0..ROWS {
-        let at = NOW - 30 * DAY + (i as i64 * 30 * DAY) / ROWS as i64;
+    for i in 0..rows {
+        let at = NOW - 30 * DAY + (i as i64 * 30 * DAY) / rows as i64;
         batch.push(entry(format!("V{i:015}"), at, &mut rng));
         if batch.len() == batch.capacity() {
             store.record(&batch).expect("record");
             batch.clear();
         }
     }
+    store.record(&batch).expect("record");
     for i in 0..10_000 {
         let report = NewReport {
-            verdict_id: format!("V{:015}", rng.below(ROWS)),
+            verdict_id: format!("V{:015}", rng.below(rows)),
             kind: if i % 3 == 0 {
                 ReportKind::NotJunk
             } else {
@@ -111,7 +120,7 @@ fn bench(c: &mut Criterion) {
 
     let mut group = c.benchmark_group("store_writes");
     group.sample_size(20);
-    let mut next = ROWS;
+    let mut next = rows;
     group.bench_function("journal batch of 256 entries", |b| {
         b.iter(|| {
             let batch: Vec<JournalEntry> = (0..256)
