@@ -662,8 +662,9 @@ fn a_store_the_daemon_user_cannot_write_is_read_only() {
     std::fs::set_permissions(&folder, std::fs::Permissions::from_mode(0o555)).expect("chmod");
     std::fs::set_permissions(dir.path(), std::fs::Permissions::from_mode(0o755)).expect("chmod");
 
+    let (prefix, exe) = unprivileged(dir.path());
     for path in [folder.join("new.sqlite"), existing.clone()] {
-        let out = run_child(unprivileged(), "open", &path, &[]);
+        let out = run_child(prefix.clone(), &exe, "open", &path);
         assert!(
             out.iter()
                 .any(|l| l.starts_with("error read-only ") && l.contains(path_name(&path))),
@@ -776,7 +777,7 @@ fn a_full_disk_is_an_error_and_loses_nothing_held() {
         "-c".to_string(),
         "trap '' XFSZ; ulimit -f 2048; exec \"$0\" \"$@\"".to_string(),
     ];
-    let out = run_child(limited, "hold-big", &path, &[]);
+    let out = run_child(limited, &this_binary(), "hold-big", &path);
     let big = out
         .iter()
         .find(|l| l.starts_with("big "))
@@ -813,7 +814,7 @@ fn integrity_holds_after_a_kill_mid_batch() {
     let dir = tempfile::tempdir().expect("temp dir");
     let path = dir.path().join("store.sqlite");
     drop(open(&path));
-    let mut child = child_command(Vec::new(), "batches", &path, &[])
+    let mut child = child_command(Vec::new(), &this_binary(), "batches", &path)
         .stdout(Stdio::piped())
         .spawn()
         .expect("start the writer");
@@ -878,28 +879,35 @@ fn integrity_holds_after_a_kill_mid_batch() {
 
 const BATCH: usize = 200;
 
-/// The command prefix that runs a child as a user without write access: `setpriv` to
-/// `nobody` when this process is root, nothing otherwise.
-fn unprivileged() -> Vec<String> {
+/// How to run a child as a user without write access: as `nobody` through util-linux's
+/// `setpriv` when this process is root, as itself otherwise. As root the test binary is
+/// first copied into `dir` (mode 0755), so `nobody` can run it wherever the checkout is.
+fn unprivileged(dir: &Path) -> (Vec<String>, PathBuf) {
+    let exe = std::env::current_exe().expect("test binary path");
     let euid = std::fs::metadata("/proc/self")
         .map(|m| m.uid())
         .unwrap_or(0);
-    if euid == 0 {
-        [
-            "setpriv",
-            "--reuid=65534",
-            "--regid=65534",
-            "--clear-groups",
-        ]
-        .map(String::from)
-        .to_vec()
-    } else {
-        Vec::new()
+    if euid != 0 {
+        return (Vec::new(), exe);
     }
+    let copy = dir.join("store-child");
+    std::fs::copy(&exe, &copy).expect("copy the test binary");
+    std::fs::set_permissions(&copy, std::fs::Permissions::from_mode(0o755)).expect("chmod");
+    let prefix = [
+        "setpriv",
+        "--reuid=65534",
+        "--regid=65534",
+        "--clear-groups",
+    ];
+    (prefix.map(String::from).to_vec(), copy)
 }
 
-fn child_command(prefix: Vec<String>, role: &str, path: &Path, extra: &[&str]) -> Command {
-    let exe = std::env::current_exe().expect("test binary path");
+/// The test binary itself, for children run as this user.
+fn this_binary() -> PathBuf {
+    std::env::current_exe().expect("test binary path")
+}
+
+fn child_command(prefix: Vec<String>, exe: &Path, role: &str, path: &Path) -> Command {
     let mut argv: Vec<String> = prefix;
     argv.push(exe.to_string_lossy().into_owned());
     argv.extend(
@@ -916,15 +924,14 @@ fn child_command(prefix: Vec<String>, role: &str, path: &Path, extra: &[&str]) -
     cmd.args(&argv[1..])
         .env("TAMIS_STORE_CHILD", role)
         .env("TAMIS_STORE_PATH", path)
-        .env("TAMIS_STORE_ARGS", extra.join(" "))
         .stdin(Stdio::null())
         .stderr(Stdio::inherit());
     cmd
 }
 
 /// Runs a child to the end and returns its own lines (`CHILD ` prefix removed).
-fn run_child(prefix: Vec<String>, role: &str, path: &Path, extra: &[&str]) -> Vec<String> {
-    let out = child_command(prefix, role, path, extra)
+fn run_child(prefix: Vec<String>, exe: &Path, role: &str, path: &Path) -> Vec<String> {
+    let out = child_command(prefix, exe, role, path)
         .output()
         .expect("run the child");
     let text = String::from_utf8_lossy(&out.stdout);
