@@ -53,6 +53,10 @@ pub const MAX_SOCKET_PATH: usize = 107;
 pub const MIN_FRAME_BYTES: u32 = 4096;
 /// Longest subject prefix in characters.
 pub const MAX_SUBJECT_PREFIX: usize = 64;
+/// Default store file: under the daemon's state directory.
+pub const DEFAULT_STORE_PATH: &str = "/var/lib/tamis/store.sqlite";
+/// Longest retention accepted, in days (100 years).
+pub const MAX_RETENTION_DAYS: u32 = 36_500;
 
 /// The whole configuration, validated.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -82,6 +86,9 @@ pub struct Config {
     /// Header edits on tagged mail.
     #[serde(default, deserialize_with = "checked")]
     pub headers: HeaderConfig,
+    /// The store of held mail, the verdict journal and reports.
+    #[serde(default, deserialize_with = "checked")]
+    pub store: StoreConfig,
     /// Log output.
     #[serde(default)]
     pub logging: Logging,
@@ -105,6 +112,7 @@ impl Default for Config {
             model: ModelSource::default(),
             policy: Policy::default(),
             headers: HeaderConfig::default(),
+            store: StoreConfig::default(),
             logging: Logging::default(),
         }
     }
@@ -208,6 +216,7 @@ impl Config {
             ));
         }
         self.headers.check().map_err(located)?;
+        self.store.check().map_err(located)?;
         if let ModelSource::File(path) = &self.model
             && path.as_os_str().is_empty()
         {
@@ -240,6 +249,7 @@ impl Config {
         if let Some(path) = &mut self.access.secret_file {
             resolve(path);
         }
+        resolve(&mut self.store.path);
     }
 }
 
@@ -587,6 +597,61 @@ fn check_subject_prefix(prefix: &str) -> Result<(), String> {
         ));
     }
     Ok(())
+}
+
+/// The store (`src/store/`): held mail, the verdict journal and reports, in one SQLite
+/// file.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct StoreConfig {
+    /// The store file; relative paths are resolved against the config file's folder.
+    /// Default `/var/lib/tamis/store.sqlite`. Created with mode 0600 if missing; its
+    /// folder must exist.
+    pub path: PathBuf,
+    /// Days a held message is kept before it is purged; 1 to 36 500. Default 30.
+    #[serde(deserialize_with = "positive_u32")]
+    pub quarantine_days: u32,
+    /// Days journal entries and reports are kept; 1 to 36 500. Default 90.
+    #[serde(deserialize_with = "positive_u32")]
+    pub journal_days: u32,
+    /// Keep each message's Subject in the journal. Default off: the journal keeps no
+    /// content, only scores, domains and feature names.
+    pub record_subject: bool,
+}
+
+impl Default for StoreConfig {
+    fn default() -> StoreConfig {
+        StoreConfig {
+            path: PathBuf::from(DEFAULT_STORE_PATH),
+            quarantine_days: 30,
+            journal_days: 90,
+            record_subject: false,
+        }
+    }
+}
+
+impl Check for StoreConfig {
+    fn check(&self) -> Result<(), String> {
+        if self.path.as_os_str().is_empty() {
+            return Err(format!(
+                "store.path is empty; give the store file's path, e.g. \"{DEFAULT_STORE_PATH}\", or remove the key for that default"
+            ));
+        }
+        for (key, days) in [
+            ("quarantine_days", self.quarantine_days),
+            ("journal_days", self.journal_days),
+        ] {
+            if days == 0 {
+                return Err(format!("store.{key} is 0; keep records at least 1 day"));
+            }
+            if days > MAX_RETENTION_DAYS {
+                return Err(format!(
+                    "store.{key} is {days}, more than {MAX_RETENTION_DAYS} days (100 years); choose a shorter retention"
+                ));
+            }
+        }
+        Ok(())
+    }
 }
 
 /// What happens to a message that could not be scanned (model missing, scoring failed).
@@ -1161,6 +1226,38 @@ mod tests {
             Some((2, 4, "bé = \"x\"".to_string()))
         );
         assert!(locate(text, 1000).is_none());
+    }
+
+    #[test]
+    fn store_section_defaults_resolves_and_checks() {
+        let c = Config::from_toml_str("", "/etc/tamis/tamis.toml").unwrap_or_default();
+        assert_eq!(c.store, StoreConfig::default());
+        assert_eq!(c.store.path, PathBuf::from(DEFAULT_STORE_PATH));
+        assert!(!c.store.record_subject);
+        let c = Config::from_toml_str(
+            "[store]\npath = \"state/store.sqlite\"\nquarantine_days = 7\nrecord_subject = true\n",
+            "/etc/tamis/tamis.toml",
+        );
+        let store = c.map(|c| c.store).ok();
+        assert_eq!(
+            store.as_ref().map(|s| (
+                s.path.clone(),
+                s.quarantine_days,
+                s.journal_days,
+                s.record_subject
+            )),
+            Some((PathBuf::from("/etc/tamis/state/store.sqlite"), 7, 90, true))
+        );
+        for (bad, needle) in [
+            ("[store]\nquarantine_days = 0\n", "at least 1"),
+            ("[store]\njournal_days = 40000\n", "36500"),
+            ("[store]\npath = \"\"\n", "store.path is empty"),
+            ("[store]\nkeep = 3\n", "unknown field"),
+        ] {
+            let e = Config::from_toml_str(bad, "t.toml").map(drop).err();
+            let text = e.map(|e| e.to_string()).unwrap_or_default();
+            assert!(text.contains(needle), "{bad:?} gave {text:?}");
+        }
     }
 
     #[test]

@@ -14,6 +14,9 @@
 //!    and scoring so both see exactly the same vector.
 //!
 //! 5. [`proto`] — the relay protocol's frames, codec and state machine (`proto/PROTOCOL.md`).
+//! 6. [`store`] — what is kept after a verdict: the verdict journal, held (quarantined)
+//!    messages, reports about verdicts, and the per-domain false-positive figures built
+//!    from them; SQLite by default, behind a trait.
 //!
 //! [`fsio`] is the one way files are replaced (temporary file, fsync, rename) and the
 //! bounded, non-blocking way model and configuration files are read.
@@ -37,6 +40,7 @@ pub mod policy;
 pub mod proto;
 pub mod rng;
 pub mod server;
+pub mod store;
 pub mod text;
 pub mod train;
 

@@ -15,4 +15,5 @@ mod murmur;
 mod proto_vectors;
 mod python;
 mod solver_reference;
+mod store;
 mod text_normalize;
