@@ -13,5 +13,6 @@ mod mime;
 mod murmur;
 mod proto_vectors;
 mod python;
+mod scan_bypass;
 mod solver_reference;
 mod text_normalize;
