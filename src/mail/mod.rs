@@ -14,7 +14,9 @@
 //! file reader would refuse becomes [`Signal::HeaderMalformed`], so a sender who controls
 //! the first header field cannot opt a message out of scoring.
 
+pub mod address;
 pub mod charset;
+pub mod encoded_words;
 pub mod headers;
 pub mod html;
 pub mod mime;

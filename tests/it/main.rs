@@ -6,6 +6,7 @@ mod corpus_readers;
 mod cpython_email;
 mod daemon;
 mod demo_corpus;
+mod encoded_words;
 mod eval_reference;
 mod html;
 pub mod invariance;
