@@ -19,7 +19,7 @@
 //! - the charset is resolved by the WHATWG Encoding Standard (`encoding_rs`), as for body
 //!   text; an RFC 2231 §5 language suffix (`utf-8*en`) is tolerated;
 //! - B text is base64 (missing padding tolerated, as Python's `email.header` does), Q text
-//!   is RFC 2047 §4.2 (`_` is a space, `=XX` an octet);
+//!   is RFC 2047 §4.2 (`_` is a space, `=XX` an octet; broken escapes as before);
 //! - a word that does not decode (unknown charset, bad base64, unknown encoding) is kept as
 //!   literal text, as RFC 2047 §6.3 allows.
 
@@ -218,7 +218,7 @@ pub fn decode_word(inner: &str) -> Option<String> {
     let charset = charset.split_once('*').map_or(charset, |(c, _)| c);
     let octets = match encoding {
         "B" | "b" => decode_b(text.as_bytes())?,
-        "Q" | "q" => decode_q(text.as_bytes()),
+        "Q" | "q" => decode_q(text),
         _ => return None,
     };
     let encoding = Encoding::for_label_no_replacement(charset.as_bytes())?;
@@ -266,34 +266,36 @@ fn decode_b(text: &[u8]) -> Option<Vec<u8>> {
     Some(out)
 }
 
-/// RFC 2047 §4.2: `_` is a space, `=XX` the octet XX; anything else stands for itself
-/// (an `=` not followed by two hex digits included, as Python's `email.header` reads it).
-fn decode_q(text: &[u8]) -> Vec<u8> {
-    let hex = |b: Option<&u8>| b.and_then(|&b| char::from(b).to_digit(16));
-    let mut out = Vec::with_capacity(text.len());
-    let mut i = 0;
-    while let Some(&b) = text.get(i) {
-        match b {
-            b'_' => {
-                out.push(b' ');
-                i += 1;
-            }
-            b'=' => match (hex(text.get(i + 1)), hex(text.get(i + 2))) {
-                (Some(hi), Some(lo)) => {
-                    out.push((hi * 16 + lo) as u8);
-                    i += 3;
-                }
-                _ => {
-                    out.push(b'=');
-                    i += 1;
-                }
+/// RFC 2047 §4.2: `_` is a space, `=XX` the octet XX, anything else stands for itself.
+/// Broken escapes read as the previous reader (the `mailparse` crate) read them, so
+/// adjacent words glued without whitespace decode as before: `=` with two non-hex
+/// characters stays as those three characters, a lone `=` at the end of the text (before
+/// any trailing whitespace) is dropped.
+fn decode_q(text: &str) -> Vec<u8> {
+    let bytes = text.as_bytes();
+    let body_len = text
+        .trim_end_matches(|c: char| c == '_' || c.is_whitespace())
+        .len();
+    let (body, tail) = bytes.split_at(body_len);
+    let space = |b: u8| if b == b'_' { b' ' } else { b };
+    let hex = |b: u8| char::from(b).to_digit(16);
+    let mut out = Vec::with_capacity(bytes.len());
+    let mut rest = body.iter().copied();
+    while let Some(b) = rest.next() {
+        if b != b'=' {
+            out.push(space(b));
+            continue;
+        }
+        match (rest.next(), rest.next()) {
+            (None, _) => {}
+            (Some(hi), None) => out.extend([b'=', space(hi)]),
+            (Some(hi), Some(lo)) => match (hex(hi), hex(lo)) {
+                (Some(h), Some(l)) => out.push((h * 16 + l) as u8),
+                _ => out.extend([b'=', space(hi), space(lo)]),
             },
-            _ => {
-                out.push(b);
-                i += 1;
-            }
         }
     }
+    out.extend(tail.iter().copied().map(space));
     out
 }
 
@@ -372,6 +374,16 @@ mod tests {
         assert_eq!(dec("plain\r\n\tfolded"), "plain folded");
         assert_eq!(dec("=?utf-8*en?q?caf=C3=A9?="), "café");
         assert_eq!(dec("=?utf-8?b?w6k?="), "é", "missing padding tolerated");
+        assert_eq!(dec("=?utf-8?q?caf\u{e9}?="), "café", "8-bit Q text kept");
+    }
+
+    #[test]
+    fn broken_q_escapes_read_as_before() {
+        assert_eq!(dec("=?utf-8?q?a=?="), "a");
+        assert_eq!(dec("=?utf-8?q?a=4?="), "a=4");
+        assert_eq!(dec("=?utf-8?q?=G=41?="), "=G=41");
+        assert_eq!(dec("=?utf-8?q?a=_?="), "a ", "the `=` before trailing blanks goes");
+        assert_eq!(dec("=?utf-8?q?a__?= b"), "a   b");
     }
 
     #[test]

@@ -312,3 +312,111 @@ fn a_subject_of_repeated_openers_costs_linear_time_end_to_end() {
         "64 KiB took {t_small:?}, 640 KiB took {t_large:?}: ratio {ratio:.1}"
     );
 }
+
+mod property {
+    use proptest::prelude::*;
+    use tamis::mail::encoded_words::decode_unstructured;
+
+    /// Pieces of well-formed header values: encoded words (correctly padded), plain words,
+    /// the separators the previous reader treated as word boundaries, folding, and stray
+    /// openers and closers (which glue words together).
+    fn piece() -> impl Strategy<Value = &'static str> {
+        prop_oneof![
+            Just("=?utf-8?q?caf=C3=A9?="),
+            Just("=?UTF-8?B?w6k=?="),
+            Just("=?iso-8859-1?q?a_b?="),
+            Just("=?koi8-r?b?8NLJ18XU?="),
+            Just("=?x-unknown?q?a?="),
+            Just("plain"),
+            Just("Re:"),
+            Just(" "),
+            Just("  "),
+            Just("\t"),
+            Just("\r\n "),
+            Just("\r\n\t"),
+            Just("("),
+            Just(")"),
+            Just(","),
+            Just("\""),
+            Just("<"),
+            Just("=?"),
+            Just("?="),
+        ]
+    }
+
+    fn display_name() -> impl Strategy<Value = &'static str> {
+        prop_oneof![
+            Just(""),
+            Just("Ada Quill "),
+            Just("\"Quill, Ada\" "),
+            Just("\"A \\\"q\\\" B\" "),
+            Just("=?utf-8?q?Ad=C3=A0?= "),
+            Just("=?utf-8?b?QWTDoA==?= =?utf-8?q?_Quill?= "),
+            Just("Ada (the first) "),
+        ]
+    }
+
+    fn address() -> impl Strategy<Value = &'static str> {
+        prop_oneof![
+            Just("ada@Example.ORG"),
+            Just("ada.quill@mail.example.net."),
+            Just("x+tag@sub.example.test"),
+        ]
+    }
+
+    /// A well-formed mailbox (RFC 5322 §3.4): name-addr or addr-spec with a comment.
+    fn mailbox() -> impl Strategy<Value = String> {
+        (display_name(), address(), any::<bool>()).prop_map(|(name, addr, angle)| {
+            if angle || !name.is_empty() {
+                format!("{name}<{addr}>")
+            } else {
+                format!("{addr} (comment)")
+            }
+        })
+    }
+
+    /// A well-formed address list, possibly with a group first.
+    fn address_list() -> impl Strategy<Value = String> {
+        (
+            proptest::collection::vec(mailbox(), 1..4),
+            prop_oneof![Just(None), Just(Some("Team:")), Just(Some("\"Team, A\":"))],
+            any::<bool>(),
+        )
+            .prop_map(|(boxes, group, empty_group)| {
+                let list = boxes.join(",\r\n ");
+                match group {
+                    // After the list: the previous reader failed on a mailbox that
+                    // follows an empty group (`G:;, a@b`), which RFC 5322 §3.4 allows
+                    // and tamis reads (see the unit tests of `tamis::mail::address`).
+                    Some(g) if empty_group => format!("{list}, {g};"),
+                    Some(g) => format!("{g} {list};"),
+                    None => list,
+                }
+            })
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig::with_cases(2000))]
+
+        #[test]
+        fn well_formed_from_fields_give_the_previous_sender_domain(list in address_list()) {
+            let raw = format!("From: {list}\r\n");
+            let (header, _) = mailparse::parse_header(raw.as_bytes()).expect("a field");
+            prop_assert_eq!(
+                tamis::mail::address::first_domain(header.get_value_raw()),
+                super::previous_sender_domain(&header),
+                "{}", list
+            );
+        }
+
+        #[test]
+        fn well_formed_values_read_as_the_previous_reader_read_them(
+            pieces in proptest::collection::vec(piece(), 0..12)
+        ) {
+            let value = pieces.concat();
+            let raw = format!("Subject: {value}\r\n");
+            let (header, _) = mailparse::parse_header(raw.as_bytes()).expect("a field");
+            prop_assert_eq!(decode_unstructured(header.get_value_raw()), header.get_value());
+        }
+    }
+}
