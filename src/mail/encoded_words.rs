@@ -382,7 +382,11 @@ mod tests {
         assert_eq!(dec("=?utf-8?q?a=?="), "a");
         assert_eq!(dec("=?utf-8?q?a=4?="), "a=4");
         assert_eq!(dec("=?utf-8?q?=G=41?="), "=G=41");
-        assert_eq!(dec("=?utf-8?q?a=_?="), "a ", "the `=` before trailing blanks goes");
+        assert_eq!(
+            dec("=?utf-8?q?a=_?="),
+            "a ",
+            "the `=` before trailing blanks goes"
+        );
         assert_eq!(dec("=?utf-8?q?a__?= b"), "a   b");
     }
 
