@@ -47,16 +47,31 @@ impl Analyzer {
         self.featurizer.spec()
     }
 
-    /// Runs the whole pipeline on `raw` and returns the message's vector.
+    /// Runs the whole pipeline on `raw`, a file that should hold one message, and returns
+    /// the message's vector. Refuses bytes that do not start like mail.
     pub fn vectorize(&mut self, raw: &[u8]) -> Result<&SparseVector, MailError> {
         self.extractor.extract(raw, &mut self.extracted)?;
+        Ok(self.featurize())
+    }
+
+    /// Runs the whole pipeline on `raw`, a message handed over by a relay, and returns its
+    /// vector. Never refuses: relayed bytes are mail by definition, so an odd start is
+    /// scored with a signal instead of escaping the filter
+    /// ([`crate::mail::Extractor::extract_relayed`]).
+    pub fn vectorize_relayed(&mut self, raw: &[u8]) -> &SparseVector {
+        self.extractor.extract_relayed(raw, &mut self.extracted);
+        self.featurize()
+    }
+
+    fn featurize(&mut self) -> &SparseVector {
         self.fields.fill(&self.extracted);
         self.featurizer
             .featurize(&self.fields, &self.extracted, &mut self.vector);
-        Ok(&self.vector)
+        &self.vector
     }
 
-    /// What the last [`Analyzer::vectorize`] call extracted.
+    /// What the last [`Analyzer::vectorize`] or [`Analyzer::vectorize_relayed`] call
+    /// extracted.
     pub fn extracted(&self) -> &Extracted {
         &self.extracted
     }

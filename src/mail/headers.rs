@@ -1,13 +1,18 @@
 //! Header sections: lenient parsing and the header-derived signals.
 //!
-//! `mailparse` parses each field (folding, RFC 2047 encoded words, RFC 2231 parameters);
-//! this module adds leniency on top — a field that cannot be parsed is skipped rather than
-//! failing the whole message — and picks out what the filter uses: the subject, the sender's
-//! domain and the verdicts of an upstream `Authentication-Results` field (RFC 8601).
+//! `mailparse` splits the section into fields and parses the structured MIME fields (RFC
+//! 2231 parameters); this module adds leniency on top — a field that cannot be parsed is
+//! skipped rather than failing the whole message — and picks out what the filter uses: the
+//! subject (decoded by [`super::encoded_words`]), the sender's domain
+//! ([`super::address`]) and the verdicts of an upstream `Authentication-Results` field
+//! (RFC 8601). Every value the filter reads is read in time linear in its length, and at
+//! most [`super::encoded_words::MAX_FIELD_BYTES`] of it.
 
 use std::borrow::Cow;
 
-use mailparse::{MailHeader, MailHeaderMap, parse_header};
+use mailparse::{MailHeader, parse_header};
+
+use super::{address, encoded_words};
 
 /// The header fields of one entity and where its body starts.
 pub struct HeaderSection<'a> {
@@ -61,24 +66,26 @@ pub fn parse_section(raw: &[u8]) -> HeaderSection<'_> {
     }
 }
 
-/// The first value of field `name`, decoded (RFC 2047 words, folding removed).
+/// The first field called `name` (names compare case-insensitively, RFC 5322 §1.2.2).
+fn first_field<'a, 'b>(fields: &'a [MailHeader<'b>], name: &str) -> Option<&'a MailHeader<'b>> {
+    fields
+        .iter()
+        .find(|f| f.get_key_ref().eq_ignore_ascii_case(name))
+}
+
+/// The first value of field `name`, decoded (RFC 2047 words, folding removed), at most
+/// [`super::encoded_words::MAX_FIELD_BYTES`] of it read.
 pub fn first_value(fields: &[MailHeader<'_>], name: &str) -> Option<String> {
-    fields.get_first_value(name)
+    first_field(fields, name).map(|f| encoded_words::decode_unstructured(f.get_value_raw()))
 }
 
 /// The value of the first field `name`, unfolded but without RFC 2047 decoding: for the
 /// structured MIME fields (Content-Type and friends), where encoded words are not allowed
-/// (RFC 2047 §5), so decoding them would only cost time.
+/// (RFC 2047 §5), so decoding them would only cost time. At most
+/// [`super::encoded_words::MAX_FIELD_BYTES`] of the value are read.
 pub fn first_structured<'a>(fields: &'a [MailHeader<'_>], name: &str) -> Option<Cow<'a, str>> {
-    let field = fields
-        .iter()
-        .find(|f| f.get_key_ref().eq_ignore_ascii_case(name))?;
-    let raw = field.get_value_raw();
-    let text = match std::str::from_utf8(raw) {
-        Ok(text) => Cow::Borrowed(text),
-        // RFC 5322 fields are ASCII; stray 8-bit bytes are read as Latin-1 so nothing is lost.
-        Err(_) => Cow::Owned(raw.iter().map(|&b| char::from(b)).collect()),
-    };
+    // RFC 5322 fields are ASCII; stray 8-bit bytes are read as Latin-1 so nothing is lost.
+    let text = encoded_words::field_text(first_field(fields, name)?.get_value_raw());
     if text.contains(['\r', '\n']) {
         // Unfolding (RFC 5322 §2.2.3): the line break goes, the whitespace after it stays.
         Some(Cow::Owned(
@@ -91,18 +98,7 @@ pub fn first_structured<'a>(fields: &'a [MailHeader<'_>], name: &str) -> Option<
 
 /// Domain of the first address in the `From` field, lower-cased.
 pub fn sender_domain(fields: &[MailHeader<'_>]) -> Option<String> {
-    let field = fields.get_first_header("From")?;
-    let addresses = mailparse::addrparse_header(field).ok()?;
-    let first = addresses.iter().find_map(|a| match a {
-        mailparse::MailAddr::Single(info) => Some(info.addr.clone()),
-        mailparse::MailAddr::Group(group) => group.addrs.first().map(|i| i.addr.clone()),
-    })?;
-    let domain = first.rsplit_once('@')?.1.trim().trim_end_matches('.');
-    if domain.is_empty() {
-        None
-    } else {
-        Some(domain.to_ascii_lowercase())
-    }
+    address::first_domain(first_field(fields, "From")?.get_value_raw())
 }
 
 /// Method results of the topmost `Authentication-Results` field (RFC 8601 §2.2), as

@@ -6,8 +6,17 @@
 //! [`Signal`]s. It never fails on a message that starts like mail: malformed structure is
 //! read on a best-effort basis and recorded as a signal. Work and memory are bounded by
 //! [`ExtractLimits`], whatever the input.
+//!
+//! Two entry points differ only in what they refuse. [`Extractor::extract`] reads files
+//! and refuses bytes that do not start like mail ([`MailError`]), so `tamis train` or
+//! `tamis score` pointed at a picture says so. [`Extractor::extract_relayed`] reads what a
+//! relay handed over, which is mail by definition: it never refuses, and a start that the
+//! file reader would refuse becomes [`Signal::HeaderMalformed`], so a sender who controls
+//! the first header field cannot opt a message out of scoring.
 
+pub mod address;
 pub mod charset;
+pub mod encoded_words;
 pub mod headers;
 pub mod html;
 pub mod mime;
@@ -117,7 +126,8 @@ impl Extractor {
         self.limits
     }
 
-    /// Extracts `raw` into `out` (cleared first).
+    /// Extracts `raw`, a file that should hold one message, into `out` (cleared first).
+    /// Refuses input that is empty or does not start like mail.
     pub fn extract(&mut self, raw: &[u8], out: &mut Extracted) -> Result<(), MailError> {
         out.clear();
         if raw.is_empty() {
@@ -126,6 +136,27 @@ impl Extractor {
         if !headers::looks_like_mail(raw) {
             return Err(MailError::NotMail);
         }
+        self.extract_checked(raw, out);
+        Ok(())
+    }
+
+    /// Extracts `raw`, a message handed over by a relay, into `out` (cleared first).
+    ///
+    /// Never refuses: whatever can be read is read. When the file reader
+    /// ([`Extractor::extract`]) would have refused the bytes — no header field at all, or a
+    /// first line that is not a well-formed field (empty name, a space or an 8-bit byte in
+    /// the name) — [`Signal::HeaderMalformed`] is recorded and the rest is read as usual.
+    /// On bytes the file reader accepts, both give the same result.
+    pub fn extract_relayed(&mut self, raw: &[u8], out: &mut Extracted) {
+        out.clear();
+        let odd_start = raw.is_empty() || !headers::looks_like_mail(raw);
+        self.extract_checked(raw, out);
+        if odd_start {
+            out.signals.add(Signal::HeaderMalformed);
+        }
+    }
+
+    fn extract_checked(&mut self, raw: &[u8], out: &mut Extracted) {
         let mut raw = raw;
         if raw.len() > self.limits.max_raw_bytes {
             raw = raw.get(..self.limits.max_raw_bytes).unwrap_or(raw);
@@ -215,7 +246,6 @@ impl Extractor {
                 out.signals.add(Signal::UrlsAtLeast(bucket));
             }
         }
-        Ok(())
     }
 }
 

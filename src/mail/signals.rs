@@ -21,7 +21,8 @@ pub enum Signal {
     CharsetInvalid,
     /// A base64 or quoted-printable body broke the encoding's rules.
     TransferMalformed,
-    /// A header section contained lines that could not be parsed.
+    /// A header section contained lines that could not be parsed, or relayed mail did not
+    /// start with a well-formed header field (see [`crate::mail::Extractor::extract_relayed`]).
     HeaderMalformed,
     /// A multipart's boundary never appeared, or its closing boundary never came.
     MultipartUnclosed,

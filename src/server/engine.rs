@@ -9,7 +9,6 @@ use std::sync::{Arc, Mutex, RwLock};
 use crate::analyze::Analyzer;
 use crate::config::{FailureMode, HeaderConfig};
 use crate::features::SpecError;
-use crate::mail::MailError;
 use crate::model::LinearModel;
 use crate::policy::Policy;
 
@@ -25,9 +24,6 @@ pub struct Score {
 /// Why a message could not be scored.
 #[derive(Debug, thiserror::Error)]
 pub enum ScoreError {
-    /// The bytes are not a mail message.
-    #[error(transparent)]
-    Mail(#[from] MailError),
     /// An analyzer could not be built (the spec was accepted at load, so this is a bug).
     #[error(transparent)]
     Spec(#[from] SpecError),
@@ -104,27 +100,27 @@ impl Engine {
         &self.origin
     }
 
-    /// Scores one raw message. Blocking: call from a blocking thread.
+    /// Scores one raw message handed over by a relay. Any bytes are scored: relayed mail is
+    /// never refused as "not mail" (see [`Analyzer::vectorize_relayed`]). Blocking: call
+    /// from a blocking thread.
     pub fn score(&self, raw: &[u8]) -> Result<Score, ScoreError> {
         let pooled = self.analyzers.lock().ok().and_then(|mut pool| pool.pop());
         let mut analyzer = match pooled {
             Some(a) => a,
             None => Analyzer::new(self.model.spec().clone())?,
         };
-        let result = analyzer
-            .vectorize(raw)
-            .map(|x| {
-                let margin = self.model.margin(x);
-                Score {
-                    margin,
-                    probability: self.model.probability(margin),
-                }
-            })
-            .map_err(ScoreError::from);
+        // Relayed mode: the relay handed these bytes over as mail, so they are scored
+        // whatever their first line looks like; refusing them would let a sender opt out.
+        let x = analyzer.vectorize_relayed(raw);
+        let margin = self.model.margin(x);
+        let score = Score {
+            margin,
+            probability: self.model.probability(margin),
+        };
         if let Ok(mut pool) = self.analyzers.lock() {
             pool.push(analyzer);
         }
-        result
+        Ok(score)
     }
 }
 

@@ -897,51 +897,6 @@ fn tamis_demo_prints_a_verdict_table_per_domain() {
     assert!(dir.path().join("model.tamis").exists());
 }
 
-#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
-async fn a_message_that_cannot_be_scored_follows_the_failure_mode() {
-    for (mode, action) in [
-        (
-            tamis::config::FailureMode::Accept,
-            tamis::proto::Action::Accept,
-        ),
-        (
-            tamis::config::FailureMode::Defer,
-            tamis::proto::Action::Defer,
-        ),
-    ] {
-        let mut config = loopback();
-        config.on_failure = mode;
-        let (running, metrics) = daemon(config).await;
-        let addr = running.tcp.expect("tcp");
-        let verdict = tokio::task::spawn_blocking(move || {
-            let mut raw = Raw::hello(addr);
-            raw.open_message();
-            // No header fields and a binary body: not a mail message, so not scannable.
-            raw.send(&Frame::Chunk {
-                data: b"\x89PNG\r\n\x1a\n\0\0".to_vec(),
-            });
-            raw.send(&Frame::Seal);
-            match raw.next() {
-                Some(Frame::Verdict(v)) => v,
-                other => panic!("{other:?}"),
-            }
-        })
-        .await
-        .expect("task");
-        assert!(verdict.margin.is_nan(), "not scored");
-        assert_eq!(verdict.recipients[0].action, action);
-        let unscanned = verdict.edits.iter().any(|e| e.name == "X-Tamis-Unscanned");
-        assert_eq!(unscanned, mode == tamis::config::FailureMode::Accept);
-        assert!(
-            metrics
-                .render()
-                .lines()
-                .any(|l| l.starts_with("tamis_unscanned_total") && l.ends_with(" 1"))
-        );
-        assert!(running.stop().await);
-    }
-}
-
 /// Log events captured in memory: one entry per event, as the subscriber wrote it.
 #[derive(Clone, Default)]
 struct CapturedLog(Arc<std::sync::Mutex<Vec<Vec<u8>>>>);
