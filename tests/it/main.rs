@@ -12,6 +12,7 @@ mod html;
 pub mod invariance;
 mod mime;
 mod murmur;
+mod operator;
 mod proto_vectors;
 mod python;
 mod solver_reference;
