@@ -15,6 +15,7 @@ mod murmur;
 mod operator;
 mod proto_vectors;
 mod python;
+mod smtp_client;
 mod solver_reference;
 mod store;
 mod text_normalize;
