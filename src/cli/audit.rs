@@ -28,12 +28,28 @@ use crate::store::{AuditItem, NewReport, ReportKind, ReportSource, SqliteStore, 
 
 /// Arguments of `tamis audit`.
 #[derive(clap::Args, Debug)]
+#[command(after_long_help = AUDIT_HELP)]
 pub struct AuditArgs {
     #[command(flatten)]
     store: StoreArgs,
     #[command(subcommand)]
     command: AuditCommand,
 }
+
+const AUDIT_HELP: &str = "\
+Complaints come from people who notice a missing message; a random sample of held mail does
+not depend on who complains. Review it, record the answers, and `tamis figures` shows the
+share of legitimate mail among held mail (its 'audit' line).
+
+  tamis audit sample --config /etc/tamis/tamis.toml --domain example.org --size 20
+  tamis held show --config /etc/tamis/tamis.toml 01JX4Q8M2Z0000AB
+  tamis audit answer --config /etc/tamis/tamis.toml --domain example.org 01JX4Q8M2Z0000AB=junk
+
+The same --seed and --since give the same sample; answers are recorded only for mail held
+for the domain named.
+
+Exit codes: 0 success; 1 the store failed; 2 bad arguments; 3 some answer was not recorded
+or not counted.";
 
 #[derive(Subcommand, Debug)]
 enum AuditCommand {

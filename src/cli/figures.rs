@@ -35,6 +35,8 @@ pub struct FiguresArgs {
 }
 
 const DEFINITIONS: &str = "\
+Example: tamis figures --config /etc/tamis/tamis.toml --since 30d --domain example.org
+
 Definitions (per recipient domain D; the window selects verdicts made within --since):
 
   message      a journal entry with at least one recipient in D, counted once however

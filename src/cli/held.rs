@@ -31,6 +31,7 @@ use crate::store::{
 
 /// Arguments of `tamis held`.
 #[derive(clap::Args, Debug)]
+#[command(after_long_help = HELD_HELP)]
 pub struct HeldArgs {
     #[command(flatten)]
     store: StoreArgs,
@@ -128,6 +129,22 @@ struct ReleaseArgs {
     #[arg(long, value_name = "HOST:PORT", conflicts_with_all = ["to", "into"])]
     next_hop: Option<String>,
 }
+
+const HELD_HELP: &str = "\
+Examples (the daemon's configuration names the store, the model and the next hop):
+  tamis held list --config /etc/tamis/tamis.toml --domain example.org --since 2d
+  tamis held show --config /etc/tamis/tamis.toml 01JX4Q8M2Z0000AB
+  tamis held release --config /etc/tamis/tamis.toml 01JX4Q8M2Z0000AB
+  tamis held release --config /etc/tamis/tamis.toml 01JX4Q8M2Z0000AB --to message.eml
+  tamis held purge --config /etc/tamis/tamis.toml --older-than 30d
+
+`release` re-injects over SMTP to `[release] next_hop`: point it at a port of your relay
+that delivers without asking tamis again, or the message would be judged (and held) anew.
+Each subcommand's --help says more. Everything a sender wrote is escaped on a terminal.
+
+Exit codes: 0 success; 1 operational failure (the store, or a next hop that did not take
+released mail); 2 bad arguments or no store at the path; 3 partly done (some message not
+found, already released or being released elsewhere).";
 
 const RELEASE_HELP: &str = "\
 Each message goes to its held recipients with its original sender, byte for byte as it was

@@ -55,6 +55,10 @@ pub struct ReportArgs {
 }
 
 const REPORT_HELP: &str = "\
+Examples:
+  tamis report junk --by user --domain example.org --config /etc/tamis/tamis.toml reported/*.eml
+  tamis report legitimate --id 01JX4Q8M2Z0000AB --config /etc/tamis/tamis.toml
+
 A report counts as evidence only when its verdict is in the journal and, when a domain is
 named, one of the verdict's recipients is in that domain. Anything else is recorded as
 unmatched and never counted (an unknown or expired id, an id made for another domain), or
