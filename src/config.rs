@@ -89,6 +89,9 @@ pub struct Config {
     /// The store of held mail, the verdict journal and reports.
     #[serde(default, deserialize_with = "checked")]
     pub store: StoreConfig,
+    /// Where released mail is re-injected over SMTP.
+    #[serde(default, deserialize_with = "checked")]
+    pub release: ReleaseConfig,
     /// Log output.
     #[serde(default)]
     pub logging: Logging,
@@ -113,6 +116,7 @@ impl Default for Config {
             policy: Policy::default(),
             headers: HeaderConfig::default(),
             store: StoreConfig::default(),
+            release: ReleaseConfig::default(),
             logging: Logging::default(),
         }
     }
@@ -217,6 +221,10 @@ impl Config {
         }
         self.headers.check().map_err(located)?;
         self.store.check().map_err(located)?;
+        self.release.check().map_err(located)?;
+        if let Some(hop) = &self.release.next_hop {
+            check_next_hop(hop).map_err(located)?;
+        }
         if let ModelSource::File(path) = &self.model
             && path.as_os_str().is_empty()
         {
@@ -651,6 +659,135 @@ impl Check for StoreConfig {
             }
         }
         Ok(())
+    }
+}
+
+/// Where `tamis held release` re-injects released mail: the relay's SMTP port for mail
+/// that needs no more filtering (`src/smtp/`).
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct ReleaseConfig {
+    /// The next hop as `"host:port"` (a name, an IPv4 address, or an IPv6 address in
+    /// brackets); `None` (`"off"`, the default) releases only to files.
+    #[serde(with = "next_hop")]
+    pub next_hop: Option<String>,
+    /// The name sent in `EHLO`; `None` uses this machine's host name. Set it to the host's
+    /// fully qualified name (RFC 5321 §4.1.1.1).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub helo_name: Option<String>,
+    /// Opening the connection. Default 30 s.
+    #[serde(with = "duration")]
+    pub connect_timeout: Duration,
+    /// The greeting and each command's reply. Default 5 min (RFC 5321 §4.5.3.2).
+    #[serde(with = "duration")]
+    pub command_timeout: Duration,
+    /// Each write of the message. Default 3 min (RFC 5321 §4.5.3.2).
+    #[serde(with = "duration")]
+    pub data_block_timeout: Duration,
+    /// The reply after the whole message. Default 10 min (RFC 5321 §4.5.3.2).
+    #[serde(with = "duration")]
+    pub data_end_timeout: Duration,
+}
+
+impl Default for ReleaseConfig {
+    fn default() -> ReleaseConfig {
+        let t = crate::smtp::Timeouts::default();
+        ReleaseConfig {
+            next_hop: None,
+            helo_name: None,
+            connect_timeout: t.connect,
+            command_timeout: t.command,
+            data_block_timeout: t.data_block,
+            data_end_timeout: t.data_end,
+        }
+    }
+}
+
+impl ReleaseConfig {
+    /// The SMTP client's timeouts.
+    pub fn timeouts(&self) -> crate::smtp::Timeouts {
+        crate::smtp::Timeouts {
+            connect: self.connect_timeout,
+            command: self.command_timeout,
+            data_block: self.data_block_timeout,
+            data_end: self.data_end_timeout,
+        }
+    }
+}
+
+impl Check for ReleaseConfig {
+    fn check(&self) -> Result<(), String> {
+        if let Some(name) = &self.helo_name {
+            crate::smtp::client::check_helo_name(name)
+                .map_err(|e| e.replacen("the HELO name", "release.helo_name", 1))?;
+        }
+        for (key, value) in [
+            ("connect_timeout", self.connect_timeout),
+            ("command_timeout", self.command_timeout),
+            ("data_block_timeout", self.data_block_timeout),
+            ("data_end_timeout", self.data_end_timeout),
+        ] {
+            if value.is_zero() {
+                return Err(format!(
+                    "release.{key} is zero; give a positive duration such as \"30s\""
+                ));
+            }
+        }
+        Ok(())
+    }
+}
+
+/// Checks a next hop written `host:port` (the form `release.next_hop` takes).
+pub fn check_next_hop(text: &str) -> Result<(), String> {
+    let bad = |why: &str| {
+        format!(
+            "release.next_hop \"{}\" {why}; write \"host:port\" such as \"127.0.0.1:10025\" or \"[::1]:10025\", or \"off\"",
+            crate::logsafe::safe(text)
+        )
+    };
+    let Some((host, port)) = text.rsplit_once(':') else {
+        return Err(bad("has no port"));
+    };
+    match port.parse::<u16>() {
+        Ok(p) if p > 0 => {}
+        _ => return Err(bad("has no valid port (1 to 65535)")),
+    }
+    let bracketed = host.strip_prefix('[').and_then(|h| h.strip_suffix(']'));
+    let valid_host = match bracketed {
+        Some(v6) => v6.parse::<std::net::Ipv6Addr>().is_ok(),
+        None => {
+            !host.is_empty()
+                && host
+                    .bytes()
+                    .all(|b| b.is_ascii_alphanumeric() || b == b'.' || b == b'-')
+        }
+    };
+    if !valid_host {
+        return Err(bad("has no valid host name or address"));
+    }
+    Ok(())
+}
+
+/// `"host:port"` or `"off"`.
+mod next_hop {
+    use super::*;
+
+    pub fn serialize<S: Serializer>(
+        value: &Option<String>,
+        serializer: S,
+    ) -> Result<S::Ok, S::Error> {
+        serializer.serialize_str(value.as_deref().unwrap_or("off"))
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(
+        deserializer: D,
+    ) -> Result<Option<String>, D::Error> {
+        let text = String::deserialize(deserializer)?;
+        if text == "off" {
+            return Ok(None);
+        }
+        check_next_hop(&text).map_err(D::Error::custom)?;
+        Ok(Some(text))
     }
 }
 
@@ -1253,6 +1390,47 @@ mod tests {
             ("[store]\njournal_days = 40000\n", "36500"),
             ("[store]\npath = \"\"\n", "store.path is empty"),
             ("[store]\nkeep = 3\n", "unknown field"),
+        ] {
+            let e = Config::from_toml_str(bad, "t.toml").map(drop).err();
+            let text = e.map(|e| e.to_string()).unwrap_or_default();
+            assert!(text.contains(needle), "{bad:?} gave {text:?}");
+        }
+    }
+
+    #[test]
+    fn release_section_defaults_and_checks() {
+        let c = Config::from_toml_str("", "/etc/tamis/tamis.toml").unwrap_or_default();
+        assert_eq!(c.release, ReleaseConfig::default());
+        assert_eq!(c.release.next_hop, None);
+        // RFC 5321 §4.5.3.2: 5 minutes for commands, 10 for the end of the data.
+        assert_eq!(c.release.command_timeout, Duration::from_secs(300));
+        assert_eq!(c.release.data_end_timeout, Duration::from_secs(600));
+        let c = Config::from_toml_str(
+            "[release]\nnext_hop = \"[::1]:10025\"\nhelo_name = \"filter.example.org\"\ncommand_timeout = \"30s\"\n",
+            "/etc/tamis/tamis.toml",
+        )
+        .ok();
+        assert_eq!(
+            c.as_ref()
+                .map(|c| (c.release.next_hop.clone(), c.release.timeouts().command)),
+            Some((Some("[::1]:10025".to_string()), Duration::from_secs(30)))
+        );
+        let text = c.and_then(|c| c.to_toml_string().ok()).unwrap_or_default();
+        assert!(text.contains("next_hop = \"[::1]:10025\""), "{text}");
+        for (bad, needle) in [
+            (
+                "[release]\nnext_hop = \"relay.example.org\"\n",
+                "has no port",
+            ),
+            (
+                "[release]\nnext_hop = \"relay.example.org:0\"\n",
+                "valid port",
+            ),
+            ("[release]\nnext_hop = \"relay example:25\"\n", "host name"),
+            ("[release]\nnext_hop = \"[::1:25\"\n", "host name"),
+            ("[release]\nhelo_name = \"a b\"\n", "release.helo_name"),
+            ("[release]\ncommand_timeout = \"0s\"\n", "zero"),
+            ("[release]\nhop = \"x:1\"\n", "unknown field"),
         ] {
             let e = Config::from_toml_str(bad, "t.toml").map(drop).err();
             let text = e.map(|e| e.to_string()).unwrap_or_default();

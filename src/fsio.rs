@@ -183,6 +183,17 @@ pub fn write_file(
     path: &Path,
     write: impl FnOnce(&mut dyn Write) -> io::Result<()>,
 ) -> Result<(), FsioError> {
+    write_file_mode(path, 0o666, write)
+}
+
+/// Like [`write_file`], but a new file gets `mode` (less the umask) instead of `0o666`:
+/// `0o600` for mail written out of the quarantine, which other users must not read. A
+/// replaced file still keeps its own permission bits.
+pub fn write_file_mode(
+    path: &Path,
+    mode: u32,
+    write: impl FnOnce(&mut dyn Write) -> io::Result<()>,
+) -> Result<(), FsioError> {
     check_target(path)?;
     let folder = folder_of(path);
     let name = path
@@ -196,7 +207,7 @@ pub fn write_file(
     let mut temp = tempfile::Builder::new()
         .prefix(&prefix)
         .suffix(".tmp")
-        .permissions(std::fs::Permissions::from_mode(0o666))
+        .permissions(std::fs::Permissions::from_mode(mode))
         .tempfile_in(folder)
         .map_err(|e| FsioError::io(path, "create a temporary file beside it", e))?;
     if let Some(mode) = existing_mode {

@@ -18,6 +18,9 @@
 //!    messages, reports about verdicts, and the per-domain false-positive figures built
 //!    from them; SQLite by default, behind a trait.
 //!
+//! 7. [`smtp`] — SMTP as tamis speaks it: for now the client that re-injects released mail
+//!    into the relay's next hop.
+//!
 //! [`fsio`] is the one way files are replaced (temporary file, fsync, rename) and the
 //! bounded, non-blocking way model and configuration files are read.
 //! [`logsafe`] escapes every value that comes from a peer before it reaches a log line.
@@ -40,6 +43,7 @@ pub mod policy;
 pub mod proto;
 pub mod rng;
 pub mod server;
+pub mod smtp;
 pub mod store;
 pub mod text;
 pub mod train;

@@ -1,9 +1,13 @@
 //! The `tamis` command line: argument parsing, dispatch, and exit codes.
 //!
 //! Exit codes (documented in `--help` and the README):
-//! 0 success; 1 an operational failure (I/O on output, internal error); 2 bad input (a
-//! file that is not mail, unreadable input, invalid arguments).
+//! 0 success; 1 an operational failure (I/O on output, internal error, a store that
+//! failed, a next hop that could not take released mail); 2 bad input (a file that is not
+//! mail, unreadable input, invalid arguments); 3 partly done — an operator command ran, but
+//! some of what it was asked did not happen (a report recorded as unmatched or refused, a
+//! message not found or already released); each such item is named in the output.
 
+mod audit;
 mod check;
 mod config_check;
 mod corpus;
@@ -11,7 +15,11 @@ mod demo;
 mod eval;
 mod extract;
 mod features;
+mod figures;
+mod held;
 mod input;
+mod ops;
+mod report;
 mod score;
 mod serve;
 mod train;
@@ -27,6 +35,10 @@ pub const EXIT_OK: u8 = 0;
 pub const EXIT_FAILURE: u8 = 1;
 /// Exit code for bad input: unreadable files, files that are not mail, invalid arguments.
 pub const EXIT_BAD_INPUT: u8 = 2;
+/// Exit code of an operator command that ran but did not do all it was asked: some report
+/// was not counted (unmatched or refused), some message was not found, already released or
+/// being released elsewhere.
+pub const EXIT_PARTIAL: u8 = 3;
 
 /// tamis — an inline mail filter for relay operators.
 ///
@@ -34,7 +46,9 @@ pub const EXIT_BAD_INPUT: u8 = 2;
 /// n-gram features and scores them with a linear model trained on your own mail.
 ///
 /// Exit codes: 0 success, 1 operational failure, 2 bad input (a file that is not mail,
-/// an unreadable file, invalid arguments).
+/// an unreadable file, invalid arguments), 3 partly done (an operator command that could
+/// not do everything it was asked: some report not counted, some message not released;
+/// each is named in its output).
 #[derive(Parser, Debug)]
 #[command(name = "tamis", version, about, long_about)]
 struct Cli {
@@ -67,6 +81,14 @@ enum Command {
     /// Work with configuration files.
     #[command(subcommand)]
     Config(config_check::ConfigCommand),
+    /// Held (quarantined) mail: list, show, release, delete, purge.
+    Held(held::HeldArgs),
+    /// Report messages as junk or legitimate, by file or verdict id.
+    Report(report::ReportArgs),
+    /// Review a random sample of held mail and record the answers.
+    Audit(audit::AuditArgs),
+    /// Per-domain figures: actions, reports, releases, false-positive and catch rates.
+    Figures(figures::FiguresArgs),
 }
 
 /// Parses the process arguments, runs the subcommand and maps its outcome to an exit code.
@@ -96,6 +118,10 @@ pub fn main() -> ExitCode {
         Command::Check(args) => check::run(&args),
         Command::Config(command) => config_check::run(&command),
         Command::Demo(args) => demo::run(&args),
+        Command::Held(args) => held::run(&args),
+        Command::Report(args) => report::run(&args),
+        Command::Audit(args) => audit::run(&args),
+        Command::Figures(args) => figures::run(&args),
     };
     match outcome {
         Ok(code) => ExitCode::from(code),

@@ -46,12 +46,18 @@ pub enum BuiltinError {
     Spec(#[from] crate::features::SpecError),
 }
 
-/// Trains the demonstration model (about a second in a release build).
-pub fn demonstration_model() -> Result<LinearModel, BuiltinError> {
-    let spec = FeatureSpec {
+/// The feature spec of the demonstration model, without training it: what a command
+/// needs to vectorize mail the way the built-in model would see it.
+pub fn demonstration_spec() -> FeatureSpec {
+    FeatureSpec {
         hash_bits: 18,
         ..FeatureSpec::default()
-    };
+    }
+}
+
+/// Trains the demonstration model (about a second in a release build).
+pub fn demonstration_model() -> Result<LinearModel, BuiltinError> {
+    let spec = demonstration_spec();
     let mut analyzer = Analyzer::new(spec.clone())?;
     let mut rows = Vec::with_capacity(MESSAGES);
     let mut labels = Vec::with_capacity(MESSAGES);
@@ -108,6 +114,7 @@ mod tests {
         let a = demonstration_model().expect("builds");
         let b = demonstration_model().expect("builds");
         assert_eq!(a, b);
+        assert_eq!(a.spec(), &demonstration_spec());
         let mut analyzer = Analyzer::new(a.spec().clone()).expect("spec");
         let mut right = 0;
         let held: Vec<_> = crate::demo::generate(99, 200).collect();

@@ -10,6 +10,11 @@
 //! section, set under `[policy]` it applies to every section that does not say otherwise.
 //! It defaults to `true`, so quarantine happens only when an operator asks for it.
 //!
+//! `target_fpr` is each domain's false-positive target — the share of legitimate mail the
+//! operator accepts to see held — set per section or policy-wide (default
+//! [`DEFAULT_TARGET_FPR`]). Deciding never reads it; the figures compare the measured rate
+//! with it.
+//!
 //! Invariants of a built [`Policy`]: thresholds are finite, probabilities lie in `[0, 1]`,
 //! quarantine ≥ tag in every section, domain keys are normalised (see [`domain`]) and
 //! distinct. [`Policy::decide`] never panics, whatever the score.
@@ -60,6 +65,16 @@ pub enum PolicyError {
         /// The value given.
         value: f64,
     },
+    /// A false-positive target outside `(0, 1)`.
+    #[error(
+        "{key} = {value} is not a false-positive rate; use a share between 0 and 1, such as 0.001 for 0.1%"
+    )]
+    NotATarget {
+        /// The key, `target_fpr`.
+        key: &'static str,
+        /// The value given.
+        value: f64,
+    },
     /// Quarantine would be easier to reach than tagging.
     #[error(
         "quarantine_{scale} ({quarantine}) is below tag_{scale} ({tag}); quarantine must never be easier to reach than tagging: raise quarantine_{scale} to at least {tag}"
@@ -102,6 +117,7 @@ pub struct Thresholds {
     tag: f64,
     quarantine: f64,
     tag_only: Option<bool>,
+    target_fpr: Option<f64>,
 }
 
 impl Thresholds {
@@ -115,6 +131,7 @@ impl Thresholds {
             tag,
             quarantine,
             tag_only: None,
+            target_fpr: None,
         })
     }
 
@@ -128,6 +145,7 @@ impl Thresholds {
             tag,
             quarantine,
             tag_only: None,
+            target_fpr: None,
         })
     }
 
@@ -135,6 +153,20 @@ impl Thresholds {
     /// the policy-wide one).
     pub fn with_tag_only(self, tag_only: Option<bool>) -> Thresholds {
         Thresholds { tag_only, ..self }
+    }
+
+    /// The same thresholds with this section's own false-positive target (`None`: follow
+    /// the policy-wide one). The target must lie strictly between 0 and 1.
+    pub fn with_target_fpr(self, target_fpr: Option<f64>) -> Result<Thresholds, PolicyError> {
+        if let Some(t) = target_fpr {
+            target("target_fpr", t)?;
+        }
+        Ok(Thresholds { target_fpr, ..self })
+    }
+
+    /// This section's own false-positive target, if it has one.
+    pub fn target_fpr(&self) -> Option<f64> {
+        self.target_fpr
     }
 
     /// What the thresholds are compared with.
@@ -193,6 +225,7 @@ impl Default for Thresholds {
             tag: 0.0,
             quarantine: 1.0,
             tag_only: None,
+            target_fpr: None,
         }
     }
 }
@@ -214,6 +247,15 @@ fn probability(key: &'static str, value: f64) -> Result<(), PolicyError> {
     }
 }
 
+fn target(key: &'static str, value: f64) -> Result<(), PolicyError> {
+    finite(key, value)?;
+    if value > 0.0 && value < 1.0 {
+        Ok(())
+    } else {
+        Err(PolicyError::NotATarget { key, value })
+    }
+}
+
 fn ordered(scale: &'static str, tag: f64, quarantine: f64) -> Result<(), PolicyError> {
     if quarantine >= tag {
         Ok(())
@@ -230,9 +272,14 @@ fn ordered(scale: &'static str, tag: f64, quarantine: f64) -> Result<(), PolicyE
 #[derive(Debug, Clone, PartialEq)]
 pub struct Policy {
     tag_only: bool,
+    target_fpr: f64,
     default: Thresholds,
     domains: BTreeMap<String, Thresholds>,
 }
+
+/// The false-positive target of sections without their own: 0.1% of legitimate mail held
+/// (the `tamis tune --target-fpr` default).
+pub const DEFAULT_TARGET_FPR: f64 = 0.001;
 
 impl Default for Policy {
     /// Margin thresholds 0 and 1 for all mail, no domain sections, and tag-only on:
@@ -240,6 +287,7 @@ impl Default for Policy {
     fn default() -> Policy {
         Policy {
             tag_only: true,
+            target_fpr: DEFAULT_TARGET_FPR,
             default: Thresholds::default(),
             domains: BTreeMap::new(),
         }
@@ -272,9 +320,33 @@ impl Policy {
         }
         Ok(Policy {
             tag_only,
+            target_fpr: DEFAULT_TARGET_FPR,
             default,
             domains: map,
         })
+    }
+
+    /// The same policy with another policy-wide false-positive target, strictly between 0
+    /// and 1.
+    pub fn with_target_fpr(self, target_fpr: f64) -> Result<Policy, PolicyError> {
+        target("target_fpr", target_fpr)?;
+        Ok(Policy { target_fpr, ..self })
+    }
+
+    /// The policy-wide false-positive target, used by sections without their own.
+    pub fn target_fpr(&self) -> f64 {
+        self.target_fpr
+    }
+
+    /// The false-positive target of a recipient domain (normalised or not): its section's
+    /// own, else the policy-wide one. The share of legitimate mail the operator accepts
+    /// to see held; the figures compare the measured rate with it.
+    pub fn target_fpr_of_domain(&self, name: &str) -> f64 {
+        self.domains
+            .get(&domain::normalize(name))
+            .and_then(|t| t.target_fpr)
+            .or(self.default.target_fpr)
+            .unwrap_or(self.target_fpr)
     }
 
     /// The policy-wide `tag_only`, used by sections without their own.
@@ -414,6 +486,8 @@ struct RawThresholds {
     quarantine_probability: Option<f64>,
     #[serde(default, skip_serializing_if = "Option::is_none")]
     tag_only: Option<bool>,
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    target_fpr: Option<f64>,
 }
 
 impl TryFrom<RawThresholds> for Thresholds {
@@ -446,7 +520,9 @@ impl TryFrom<RawThresholds> for Thresholds {
                 ));
             }
         };
-        Ok(thresholds.with_tag_only(raw.tag_only))
+        thresholds
+            .with_tag_only(raw.tag_only)
+            .with_target_fpr(raw.target_fpr)
     }
 }
 
@@ -460,6 +536,7 @@ impl From<Thresholds> for RawThresholds {
     fn from(t: Thresholds) -> RawThresholds {
         let mut raw = RawThresholds {
             tag_only: t.tag_only,
+            target_fpr: t.target_fpr,
             ..RawThresholds::default()
         };
         match t.scale {
@@ -548,12 +625,18 @@ fn yes() -> bool {
     true
 }
 
+fn default_target_fpr() -> f64 {
+    DEFAULT_TARGET_FPR
+}
+
 /// The `[policy]` table as written in the config file.
 #[derive(Deserialize)]
 #[serde(deny_unknown_fields)]
 struct RawPolicy {
     #[serde(default = "yes")]
     tag_only: bool,
+    #[serde(default = "default_target_fpr")]
+    target_fpr: f64,
     #[serde(default)]
     default: Thresholds,
     #[serde(default)]
@@ -563,6 +646,7 @@ struct RawPolicy {
 #[derive(Serialize)]
 struct RawPolicyOut<'a> {
     tag_only: bool,
+    target_fpr: f64,
     default: &'a Thresholds,
     domains: &'a BTreeMap<String, Thresholds>,
 }
@@ -570,8 +654,10 @@ struct RawPolicyOut<'a> {
 impl<'de> Deserialize<'de> for Policy {
     fn deserialize<D: Deserializer<'de>>(deserializer: D) -> Result<Policy, D::Error> {
         let raw = RawPolicy::deserialize(deserializer)?;
+        target("target_fpr", raw.target_fpr).map_err(serde::de::Error::custom)?;
         Ok(Policy {
             tag_only: raw.tag_only,
+            target_fpr: raw.target_fpr,
             default: raw.default,
             domains: raw.domains.map(|d| d.0).unwrap_or_default(),
         })
@@ -582,6 +668,7 @@ impl Serialize for Policy {
     fn serialize<S: Serializer>(&self, serializer: S) -> Result<S::Ok, S::Error> {
         RawPolicyOut {
             tag_only: self.tag_only,
+            target_fpr: self.target_fpr,
             default: &self.default,
             domains: &self.domains,
         }
@@ -656,6 +743,31 @@ mod tests {
         assert!(!Policy::default().needs_probability());
         let got = p.decide(&["x@relaxed.test".to_string()], 5.0, None);
         assert_eq!(got[0].1, Action::Defer);
+    }
+
+    #[test]
+    fn false_positive_targets_fall_back_from_section_to_default_to_policy() {
+        let own = Thresholds::default()
+            .with_target_fpr(Some(0.01))
+            .unwrap_or_default();
+        let p = Policy::new(
+            Thresholds::default(),
+            [
+                ("own.example.org".to_string(), own),
+                ("plain.example.org".to_string(), Thresholds::default()),
+            ],
+            true,
+        )
+        .and_then(|p| p.with_target_fpr(0.002))
+        .unwrap_or_default();
+        assert_eq!(p.target_fpr_of_domain("Own.Example.ORG."), 0.01);
+        assert_eq!(p.target_fpr_of_domain("plain.example.org"), 0.002);
+        assert_eq!(p.target_fpr_of_domain("elsewhere.test"), 0.002);
+        assert_eq!(Policy::default().target_fpr(), DEFAULT_TARGET_FPR);
+        for bad in [0.0, 1.0, -0.1, f64::NAN] {
+            assert!(Thresholds::default().with_target_fpr(Some(bad)).is_err());
+            assert!(Policy::default().with_target_fpr(bad).is_err());
+        }
     }
 
     #[test]
