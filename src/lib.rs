@@ -18,6 +18,10 @@
 //!    messages, reports about verdicts, and the per-domain false-positive figures built
 //!    from them; SQLite by default, behind a trait.
 //!
+//! 7. [`status`] — the status page on the metrics listener: per domain, volume, the
+//!    false-positive estimate against its target, thresholds, held mail and the audit
+//!    queue, read-only unless a token is configured.
+//!
 //! [`fsio`] is the one way files are replaced (temporary file, fsync, rename) and the
 //! bounded, non-blocking way model and configuration files are read.
 //! [`logsafe`] escapes every value that comes from a peer before it reaches a log line.
@@ -40,6 +44,7 @@ pub mod policy;
 pub mod proto;
 pub mod rng;
 pub mod server;
+pub mod status;
 pub mod store;
 pub mod text;
 pub mod train;
