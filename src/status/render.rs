@@ -46,9 +46,11 @@ h2{font-size:11px;letter-spacing:.12em;text-transform:uppercase;color:var(--soft
 table{border-collapse:collapse;width:100%}
 th,td{padding:3px 7px;text-align:left;vertical-align:top;border-bottom:1px solid #ece8de}
 th{font-size:11px;color:var(--soft);font-weight:600;border-bottom:1px solid var(--rule);white-space:nowrap}
+td.dom{white-space:nowrap}
 td.n,th.n{text-align:right;font-variant-numeric:tabular-nums;white-space:nowrap}
 tbody tr:nth-child(even){background:#faf8f3}
 table.kv td{border:0;padding:1px 7px 1px 0}
+table.kv td:first-child,table.kv td:nth-child(3){white-space:nowrap}
 table.kv td.n{padding-right:14px}
 .mono{font-family:"DejaVu Sans Mono","Liberation Mono",monospace;font-size:12px}
 .why{font-family:"DejaVu Sans Mono","Liberation Mono",monospace;font-size:11px;color:#4a4f55}
@@ -61,11 +63,11 @@ button.rel{border-color:var(--band)}
 .key{display:flex;gap:14px;font-size:12px;color:var(--soft);margin-top:2px}
 .key i{display:inline-block;width:10px;height:10px;margin-right:4px;vertical-align:-1px}
 .key .a{background:var(--a)}.key .t{background:var(--t)}.key .q{background:var(--q)}.key .d{background:var(--d)}
-.key .w{background:repeating-linear-gradient(45deg,var(--t) 0 2px,var(--q) 2px 4px)}
+.key .w{background:repeating-linear-gradient(45deg,#d9a441,#d9a441 2px,#b5473a 2px,#b5473a 4px)}
 .key .l{background:var(--l)}.key .j{background:var(--j)}
 svg{display:block;max-width:100%;height:auto}
 svg text{font:10px "DejaVu Sans","Liberation Sans",sans-serif;fill:var(--soft)}
-svg .yl{text-anchor:end}svg .xl,svg .il,svg .none{text-anchor:middle}
+svg .yl,svg .xl9,svg .il5{text-anchor:end}svg .xl,svg .il,svg .none{text-anchor:middle}svg .xl0,svg .il0{text-anchor:start}
 svg .none{font-size:12px}
 svg .ax{stroke:#7b8178}svg .grid{stroke:#e6e1d5}svg .tick{stroke:#9aa098}
 svg .a{fill:var(--a)}svg .t{fill:var(--t)}svg .q{fill:var(--q)}svg .d{fill:var(--d)}
@@ -247,6 +249,11 @@ fn thresholds_text(section: &Section) -> String {
 
 fn rate_cells(h: &mut Html, f: &DomainFigures) {
     match f.false_positives.value {
+        Some(v) if f.too_thin => {
+            h.raw("<td class=\"n muted\" data-k=\"fp\" title=\"too thin to claim a rate\">")
+                .text(&percent(v))
+                .raw(" thin</td>");
+        }
         Some(v) => {
             h.raw("<td class=\"n\" data-k=\"fp\">")
                 .text(&percent(v))
@@ -313,7 +320,7 @@ fn overview_row(h: &mut Html, line: &DomainLine, window: Window) {
     let f = &line.figures;
     h.raw("<tr data-domain=\"")
         .attr(&f.domain)
-        .raw("\"><td><a href=\"")
+        .raw("\"><td class=\"dom\"><a href=\"")
         .attr(&domain_href(&f.domain, window))
         .raw("\">")
         .text(domain_name(&f.domain))

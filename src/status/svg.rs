@@ -7,7 +7,7 @@
 //! every chart has a `<title>` and its figures are also in the page as text, so it reads
 //! without the picture.
 
-use super::html::{Html, count, percent, utc};
+use super::html::{Html, count, utc};
 use super::page::Section;
 use crate::policy::Scale;
 use crate::store::figures::{Rate, TargetCheck};
@@ -71,7 +71,7 @@ fn label(h: &mut Html, class: &'static str, x: f64, y: f64, text: &str) {
     h.raw("\">").text(text).raw("</text>");
 }
 
-const VW: f64 = 760.0;
+const VW: f64 = 1000.0;
 const VH: f64 = 172.0;
 const LEFT: f64 = 46.0;
 const RIGHT: f64 = 8.0;
@@ -90,7 +90,7 @@ pub fn volume(buckets: &[VolumeBucket], width: i64, title: &str) -> Html {
             .max()
             .unwrap_or(0),
     );
-    h.raw("<svg class=\"chart\" viewBox=\"0 0 760 172\" width=\"760\" height=\"172\" role=\"img\" aria-label=\"")
+    h.raw("<svg class=\"chart\" viewBox=\"0 0 1000 172\" width=\"1000\" height=\"172\" role=\"img\" aria-label=\"")
         .attr(title)
         .raw("\"><title>")
         .text(title)
@@ -156,8 +156,14 @@ pub fn volume(buckets: &[VolumeBucket], width: i64, title: &str) -> Html {
         } else {
             utc(b.start).chars().take(10).collect()
         };
-        let x = LEFT + slot * i as f64 + slot / 2.0;
-        label(&mut h, "xl", x, VH - 7.0, &text);
+        let (class, x) = if k == 0 {
+            ("xl0", LEFT + slot * i as f64)
+        } else if i + 1 == len && len > 2 {
+            ("xl9", LEFT + slot * (i + 1) as f64)
+        } else {
+            ("xl", LEFT + slot * i as f64 + slot / 2.0)
+        };
+        label(&mut h, class, x, VH - 7.0, &text);
     }
     if total == 0 {
         label(
@@ -178,7 +184,7 @@ const MH: f64 = 190.0;
 /// with the section's thresholds drawn when they are on the margin.
 pub fn margins(hist: &MarginHistogram, section: &Section, title: &str) -> Html {
     let mut h = Html::new();
-    h.raw("<svg class=\"chart\" viewBox=\"0 0 760 190\" width=\"760\" height=\"190\" role=\"img\" aria-label=\"")
+    h.raw("<svg class=\"chart\" viewBox=\"0 0 1000 190\" width=\"1000\" height=\"190\" role=\"img\" aria-label=\"")
         .attr(title)
         .raw("\"><title>")
         .text(title)
@@ -272,24 +278,29 @@ const FLOOR: f64 = 1e-5;
 
 /// The false-positive estimate and its 95% interval on a log scale, against the target.
 pub fn interval(rate: &Rate, target: f64, check: TargetCheck, title: &str) -> Html {
-    let (w, left, right) = (300.0, 6.0, 6.0);
+    let (w, left, right) = (340.0, 6.0, 6.0);
     let plot = w - left - right;
     let x_of = |r: f64| {
         let r = r.clamp(FLOOR, 1.0);
         left + (r.log10() - FLOOR.log10()) / -FLOOR.log10() * plot
     };
     let mut h = Html::new();
-    h.raw("<svg class=\"iv\" viewBox=\"0 0 300 40\" width=\"300\" height=\"40\" role=\"img\" aria-label=\"")
+    h.raw("<svg class=\"iv\" viewBox=\"0 0 340 40\" width=\"340\" height=\"40\" role=\"img\" aria-label=\"")
         .attr(title)
         .raw("\"><title>")
         .text(title)
         .raw("</title>");
     rect(&mut h, "track", left, 12.0, plot, 8.0);
-    for k in 0..=5 {
-        let r = FLOOR * 10f64.powi(k);
-        let x = x_of(r);
+    let names = ["0.001%", "0.01%", "0.1%", "1%", "10%", "100%"];
+    for (k, name) in names.iter().enumerate() {
+        let x = x_of(FLOOR * 10f64.powi(k as i32));
         line(&mut h, "tick", x, 20.0, x, 24.0);
-        label(&mut h, "il", x, 34.0, &percent(r));
+        let class = match k {
+            0 => "il0",
+            5 => "il5",
+            _ => "il",
+        };
+        label(&mut h, class, x, 34.0, name);
     }
     if rate.of > 0 {
         let class = match check {

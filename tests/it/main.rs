@@ -15,5 +15,6 @@ mod murmur;
 mod proto_vectors;
 mod python;
 mod solver_reference;
+mod status_page;
 mod store;
 mod text_normalize;
