@@ -14,8 +14,9 @@
 //!   between powers of 1000 and 1024.
 //! - **Addresses** are `"ip:port"` strings; `"off"` turns a listener off. **Address
 //!   ranges** (`access.tcp_allow`) are CIDR strings such as `"192.0.2.0/24"`.
-//! - **Secrets** are never written in the file: `access.secret_file` names a file that
-//!   holds one, checked by [`Config::load`] and read at start-up.
+//! - **Secrets** are never written in the file: `access.secret_file` and
+//!   `status.token_file` name files that hold them, checked by [`Config::load`] and read at
+//!   start-up.
 //! - **Paths** are absolute, or relative to the folder of the configuration file (not to
 //!   the daemon's working directory, which a service manager chooses). [`Config::load`]
 //!   makes the file's path absolute first, so every path it returns is absolute.

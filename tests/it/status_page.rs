@@ -944,3 +944,64 @@ async fn a_million_journal_rows_give_bounded_pages() {
     assert!(overview.len() < 100_000, "{} bytes", overview.len());
     assert!(running.stop().await);
 }
+
+#[test]
+fn the_status_table_is_checked_where_it_is_read() {
+    let dir = tempfile::tempdir().expect("temp dir");
+    let source = dir.path().join("tamis.toml").display().to_string();
+    for (text, expected) in [
+        (
+            "[status]\nfalse_positive_target = 0.0\n",
+            "status.false_positive_target is 0",
+        ),
+        (
+            "[status]\nfalse_positive_target = 1.5\n",
+            "status.false_positive_target is 1.5",
+        ),
+        (
+            "[status]\nhost_names = [\"bad name!\"]\n",
+            "status.host_names",
+        ),
+        ("[status]\naudit_size = 201\n", "status.audit_size is 201"),
+        ("[status]\naudit_size = 0\n", "0 is not allowed here"),
+        (
+            "[status]\ntoken_file = \"\"\n",
+            "status.token_file is empty",
+        ),
+        ("[status]\ntoken = \"inline\"\n", "unknown field `token`"),
+    ] {
+        let error = Config::from_toml_str(text, &source)
+            .expect_err(text)
+            .to_string();
+        assert!(error.contains(expected), "{text}: {error}");
+    }
+    let config = Config::from_toml_str("[status]\ntoken_file = \"t\"\n", &source).expect("valid");
+    assert_eq!(
+        config.status.token_file,
+        Some(dir.path().join("t")),
+        "relative to the file's folder"
+    );
+    assert_eq!(config.status.false_positive_target, 0.001);
+
+    // The token file is checked by `Config::load` (and so `tamis config check`) as the
+    // relay's secret file is: readable by others, or too short, is refused by name.
+    let token = dir.path().join("t");
+    let file = dir.path().join("tamis.toml");
+    std::fs::write(&file, "[status]\ntoken_file = \"t\"\n").expect("write");
+    std::fs::write(&token, format!("{TOKEN}\n")).expect("write");
+    std::fs::set_permissions(&token, std::fs::Permissions::from_mode(0o644)).expect("chmod");
+    let error = Config::load(&file).expect_err("exposed").to_string();
+    assert!(
+        error.contains("status.token_file") && error.contains("chmod 0600"),
+        "{error}"
+    );
+    std::fs::set_permissions(&token, std::fs::Permissions::from_mode(0o600)).expect("chmod");
+    std::fs::write(&token, "short\n").expect("write");
+    let error = Config::load(&file).expect_err("short").to_string();
+    assert!(
+        error.contains("status.token_file") && error.contains("5 bytes"),
+        "{error}"
+    );
+    std::fs::write(&token, format!("{TOKEN}\n")).expect("write");
+    assert!(Config::load(&file).is_ok());
+}
