@@ -14,8 +14,9 @@
 //!   between powers of 1000 and 1024.
 //! - **Addresses** are `"ip:port"` strings; `"off"` turns a listener off. **Address
 //!   ranges** (`access.tcp_allow`) are CIDR strings such as `"192.0.2.0/24"`.
-//! - **Secrets** are never written in the file: `access.secret_file` names a file that
-//!   holds one, checked by [`Config::load`] and read at start-up.
+//! - **Secrets** are never written in the file: `access.secret_file` and
+//!   `status.token_file` name files that hold them, checked by [`Config::load`] and read at
+//!   start-up.
 //! - **Paths** are absolute, or relative to the folder of the configuration file (not to
 //!   the daemon's working directory, which a service manager chooses). [`Config::load`]
 //!   makes the file's path absolute first, so every path it returns is absolute.
@@ -92,6 +93,9 @@ pub struct Config {
     /// Where released mail is re-injected over SMTP.
     #[serde(default, deserialize_with = "checked")]
     pub release: ReleaseConfig,
+    /// The status page on the metrics listener.
+    #[serde(default, deserialize_with = "checked")]
+    pub status: StatusConfig,
     /// Log output.
     #[serde(default)]
     pub logging: Logging,
@@ -117,6 +121,7 @@ impl Default for Config {
             headers: HeaderConfig::default(),
             store: StoreConfig::default(),
             release: ReleaseConfig::default(),
+            status: StatusConfig::default(),
             logging: Logging::default(),
         }
     }
@@ -198,6 +203,17 @@ impl Config {
                 }
             })?;
         }
+        if let Some(path) = &self.status.token_file {
+            crate::status::auth::Token::read(path).map_err(|e| {
+                let (message, hint) = split_hint(&e.to_string());
+                ConfigError::Invalid {
+                    file: file.to_string(),
+                    location: None,
+                    message,
+                    hint,
+                }
+            })?;
+        }
         Ok(())
     }
 
@@ -225,6 +241,7 @@ impl Config {
         if let Some(hop) = &self.release.next_hop {
             check_next_hop(hop).map_err(located)?;
         }
+        self.status.check().map_err(located)?;
         if let ModelSource::File(path) = &self.model
             && path.as_os_str().is_empty()
         {
@@ -258,6 +275,9 @@ impl Config {
             resolve(path);
         }
         resolve(&mut self.store.path);
+        if let Some(path) = &mut self.status.token_file {
+            resolve(path);
+        }
     }
 }
 
@@ -703,6 +723,50 @@ impl Default for ReleaseConfig {
     }
 }
 
+/// Default false-positive target shown on the status page: one legitimate message in a
+/// thousand held back.
+pub const DEFAULT_FALSE_POSITIVE_TARGET: f64 = 0.001;
+
+/// The status page (`src/status/`), served on the metrics listener: read-only unless a
+/// token file is set.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields, default)]
+pub struct StatusConfig {
+    /// A file holding the bearer token that actions changing state (reports, releases)
+    /// must present; `None` (the default) keeps the page read-only. Same rules as
+    /// `access.secret_file`: a regular file other users cannot read, 16 to 1024 bytes.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub token_file: Option<PathBuf>,
+    /// The false-positive rate each domain is measured against on the page, above 0 and
+    /// below 1. Default 0.001.
+    pub false_positive_target: f64,
+    /// Host names the page answers to besides IP addresses and `localhost` (a request
+    /// naming any other host is refused, so a web page cannot reach the loopback page
+    /// through a DNS name it controls). Default none.
+    pub host_names: Vec<String>,
+    /// Messages in each domain's audit queue, 1 to 200. Default 20.
+    #[serde(deserialize_with = "positive_u32")]
+    pub audit_size: u32,
+    /// Seed of the audit sample, so the page and `tamis audit` can show the same queue.
+    /// Default 1.
+    pub audit_seed: u64,
+}
+
+/// Largest audit queue the page shows.
+pub const MAX_AUDIT_SIZE: u32 = 200;
+
+impl Default for StatusConfig {
+    fn default() -> StatusConfig {
+        StatusConfig {
+            token_file: None,
+            false_positive_target: DEFAULT_FALSE_POSITIVE_TARGET,
+            host_names: Vec::new(),
+            audit_size: 20,
+            audit_seed: 1,
+        }
+    }
+}
+
 impl ReleaseConfig {
     /// The SMTP client's timeouts.
     pub fn timeouts(&self) -> crate::smtp::Timeouts {
@@ -732,6 +796,37 @@ impl Check for ReleaseConfig {
                     "release.{key} is zero; give a positive duration such as \"30s\""
                 ));
             }
+        }
+        Ok(())
+    }
+}
+
+impl Check for StatusConfig {
+    fn check(&self) -> Result<(), String> {
+        if let Some(path) = &self.token_file
+            && path.as_os_str().is_empty()
+        {
+            return Err(
+                "status.token_file is empty; give the token file's path, or remove the key to keep the page read-only"
+                    .to_string(),
+            );
+        }
+        let target = self.false_positive_target;
+        if !(target > 0.0 && target < 1.0) {
+            return Err(format!(
+                "status.false_positive_target is {target}; give a rate above 0 and below 1, e.g. 0.001 for one in a thousand"
+            ));
+        }
+        for name in &self.host_names {
+            crate::policy::domain::validate(name).map_err(|reason| {
+                format!("status.host_names: \"{name}\" is not a host name ({reason}); list names such as \"mail-filter.example.org\"")
+            })?;
+        }
+        if self.audit_size == 0 || self.audit_size > MAX_AUDIT_SIZE {
+            return Err(format!(
+                "status.audit_size is {}; give 1 to {MAX_AUDIT_SIZE}",
+                self.audit_size
+            ));
         }
         Ok(())
     }

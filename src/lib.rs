@@ -20,6 +20,9 @@
 //!
 //! 7. [`smtp`] — SMTP as tamis speaks it: for now the client that re-injects released mail
 //!    into the relay's next hop.
+//! 7. [`status`] — the status page on the metrics listener: per domain, volume, the
+//!    false-positive estimate against its target, thresholds, held mail and the audit
+//!    queue, read-only unless a token is configured.
 //!
 //! [`fsio`] is the one way files are replaced (temporary file, fsync, rename) and the
 //! bounded, non-blocking way model and configuration files are read.
@@ -44,6 +47,7 @@ pub mod proto;
 pub mod rng;
 pub mod server;
 pub mod smtp;
+pub mod status;
 pub mod store;
 pub mod text;
 pub mod train;

@@ -29,6 +29,8 @@ use super::throttle::Throttle;
 use crate::config::Config;
 use crate::metrics::Metrics;
 use crate::proto::FaultCode;
+use crate::status::StatusPage;
+use crate::store::Store;
 
 /// A running daemon: its bound addresses and the means to stop it.
 pub struct Running {
@@ -73,6 +75,7 @@ impl Running {
 struct StatusView {
     metrics: Arc<Metrics>,
     engine: SharedEngine,
+    page: Arc<StatusPage>,
 }
 
 impl Status for StatusView {
@@ -84,13 +87,28 @@ impl Status for StatusView {
         // An engine always holds a loaded model; readiness is having one.
         !self.engine.current().origin().is_empty()
     }
+
+    fn page(&self) -> Option<Arc<StatusPage>> {
+        Some(Arc::clone(&self.page))
+    }
 }
 
-/// Binds every configured listener and starts serving.
+/// Binds every configured listener and starts serving, without a store (the status page
+/// says so).
 pub async fn start(
     config: &Config,
     engine: SharedEngine,
     metrics: Arc<Metrics>,
+) -> std::io::Result<Running> {
+    start_with_store(config, engine, metrics, None).await
+}
+
+/// Binds every configured listener and starts serving; the status page reads `store`.
+pub async fn start_with_store(
+    config: &Config,
+    engine: SharedEngine,
+    metrics: Arc<Metrics>,
+    store: Option<Arc<dyn Store>>,
 ) -> std::io::Result<Running> {
     let shutdown = CancellationToken::new();
     let tracker = TaskTracker::new();
@@ -102,6 +120,10 @@ pub async fn start(
         )),
         None => None,
     };
+    let page = Arc::new(
+        StatusPage::new(&config.status, engine.clone(), store)
+            .map_err(|e| std::io::Error::other(e.to_string()))?,
+    );
     let base = Context {
         shutdown: shutdown.clone(),
         ..Context::new(engine.clone(), Arc::clone(&metrics), limits.clone())
@@ -153,7 +175,11 @@ pub async fn start(
     if let Some(addr) = config.metrics {
         let listener = TcpListener::bind(addr).await?;
         running.status = Some(listener.local_addr()?);
-        let view = Arc::new(StatusView { metrics, engine });
+        let view = Arc::new(StatusView {
+            metrics,
+            engine,
+            page,
+        });
         tracker.spawn(serve_status(listener, view, shutdown.clone()));
     }
     Ok(running)

@@ -152,9 +152,33 @@ pub fn decompress(stored: &[u8], size: u64) -> Result<Vec<u8>, String> {
     Ok(out)
 }
 
+/// The first `max` bytes of a compressed message (all of it when shorter): enough to show
+/// its header section without inflating the whole message. Only the bytes read are
+/// checked, so a copy damaged further on still shows its start.
+pub fn decompress_prefix(stored: &[u8], max: usize) -> Result<Vec<u8>, String> {
+    let mut out = Vec::with_capacity(max.min(1 << 20));
+    ZlibDecoder::new(stored)
+        .take(max as u64)
+        .read_to_end(&mut out)
+        .map_err(|e| format!("the compressed copy is damaged ({e})"))?;
+    Ok(out)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn a_prefix_is_the_start_of_the_message() {
+        let message: Vec<u8> = (0..50_000u32).map(|i| (i % 251) as u8).collect();
+        let stored = compress(&message);
+        assert_eq!(
+            decompress_prefix(&stored, 1000),
+            Ok(message[..1000].to_vec())
+        );
+        assert_eq!(decompress_prefix(&stored, 1 << 20), Ok(message.clone()));
+        assert!(decompress_prefix(b"not zlib at all", 10).is_err());
+    }
 
     #[test]
     fn vectors_round_trip() {

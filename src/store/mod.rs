@@ -26,7 +26,8 @@
 //!   as unmatched and never counted ([`ReportStatus`]).
 //!
 //! The figures per domain and their exact definitions are in [`figures`]; the audit
-//! sample's method in [`sample`]; [`JournalWriter`] batches journal entries for the daemon.
+//! sample's method in [`sample`]; [`JournalWriter`] batches journal entries for the daemon;
+//! what the status page reads besides the figures in [`views`].
 
 pub mod batch;
 pub mod blob;
@@ -35,6 +36,7 @@ pub mod figures;
 pub mod record;
 pub mod sample;
 pub mod sqlite;
+pub mod views;
 
 use std::path::Path;
 use std::time::Duration;
@@ -48,6 +50,7 @@ pub use record::{
     ReportKind, ReportReceipt, ReportSource, ReportStatus, StoredReport, UnixTime,
 };
 pub use sqlite::SqliteStore;
+pub use views::{Buckets, DomainHeld, MarginBins, MarginHistogram, VolumeBucket};
 
 use crate::config::StoreConfig;
 
@@ -188,4 +191,34 @@ pub trait Store: Send + Sync {
     /// Removes held messages held before `cutoff`, in any state but releasing (an
     /// operator's purge by age). Returns how many.
     fn purge_held_before(&self, cutoff: UnixTime) -> Result<u64, StoreError>;
+
+    // --- Status page (see [`views`]) ----------------------------------------------------
+
+    /// Messages per time bucket by action, for one recipient domain or, with `None`,
+    /// summed over all (a message then counts once per recipient domain, as in the
+    /// figures). Exactly `buckets.count` buckets, oldest first; the work is bounded by the
+    /// verdicts in the window, not by the journal.
+    fn volume(
+        &self,
+        domain: Option<&str>,
+        buckets: &Buckets,
+    ) -> Result<Vec<VolumeBucket>, StoreError>;
+
+    /// The margins of `domain`'s messages with verdicts at or after `since` that carry a
+    /// label (see [`figures`]: the latest matched report that applies to the domain),
+    /// binned by label.
+    fn reported_margins(
+        &self,
+        domain: &str,
+        since: UnixTime,
+        bins: &MarginBins,
+    ) -> Result<MarginHistogram, StoreError>;
+
+    /// Messages in the held state per recipient domain they are held for, sorted by
+    /// domain.
+    fn held_by_domain(&self) -> Result<Vec<DomainHeld>, StoreError>;
+
+    /// The first `max_bytes` of a held message in any state (enough for its header
+    /// section), without inflating the rest; `None` when nothing is held under the id.
+    fn held_head(&self, verdict_id: &str, max_bytes: usize) -> Result<Option<Vec<u8>>, StoreError>;
 }

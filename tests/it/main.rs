@@ -19,5 +19,6 @@ mod python;
 mod scan_bypass;
 mod smtp_client;
 mod solver_reference;
+mod status_page;
 mod store;
 mod text_normalize;

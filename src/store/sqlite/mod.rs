@@ -12,6 +12,7 @@
 mod fail;
 mod open;
 pub mod schema;
+mod views;
 
 use std::collections::HashMap;
 use std::path::{Path, PathBuf};
@@ -29,6 +30,7 @@ use super::record::{
     Hold, HoldOutcome, JournalEntry, MessageKey, NewReport, PurgeCounts, ReleaseOutcome,
     ReportKind, ReportReceipt, ReportSource, ReportStatus, StoredReport, UnixTime, now,
 };
+use super::views::{Buckets, DomainHeld, MarginBins, MarginHistogram, VolumeBucket};
 use super::{DAY, Store, StoreError, StoreOptions, sample};
 use crate::policy::{Action, domain};
 
@@ -1029,5 +1031,44 @@ impl Store for SqliteStore {
             "held",
             cutoff,
         )
+    }
+
+    fn volume(
+        &self,
+        domain_name: Option<&str>,
+        buckets: &Buckets,
+    ) -> Result<Vec<VolumeBucket>, StoreError> {
+        let ctx = self.ctx("count verdicts over time");
+        buckets.check().map_err(|e| ctx.invalid(e))?;
+        let domain_name = domain_name.map(domain::normalize);
+        self.read_ctx("count verdicts over time", |tx, ctx| {
+            views::volume(tx, ctx, domain_name.as_deref(), buckets)
+        })
+    }
+
+    fn reported_margins(
+        &self,
+        domain_name: &str,
+        since: UnixTime,
+        bins: &MarginBins,
+    ) -> Result<MarginHistogram, StoreError> {
+        let ctx = self.ctx("read the margins of reported mail");
+        MarginBins::new(bins.low, bins.high, bins.count).map_err(|e| ctx.invalid(e))?;
+        let domain_name = domain::normalize(domain_name);
+        self.read_ctx("read the margins of reported mail", |tx, ctx| {
+            views::reported_margins(tx, ctx, &domain_name, since, bins)
+        })
+    }
+
+    fn held_by_domain(&self) -> Result<Vec<DomainHeld>, StoreError> {
+        self.read_ctx("count held mail per domain", |tx, ctx| {
+            views::held_by_domain(tx, ctx)
+        })
+    }
+
+    fn held_head(&self, verdict_id: &str, max_bytes: usize) -> Result<Option<Vec<u8>>, StoreError> {
+        self.read_ctx("read the start of a held message", |tx, ctx| {
+            views::held_head(tx, ctx, verdict_id, max_bytes)
+        })
     }
 }
