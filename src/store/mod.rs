@@ -45,7 +45,7 @@ pub use figures::{DomainFigures, Rate, TargetCheck};
 pub use record::{
     AuditItem, Claim, DomainOutcome, HeldFilter, HeldMessage, HeldState, HeldSummary, HeldTotals,
     Hold, HoldOutcome, JournalEntry, MessageKey, NewReport, PurgeCounts, ReleaseOutcome,
-    ReportKind, ReportReceipt, ReportSource, ReportStatus, StoredReport, UnixTime,
+    ReportKind, ReportReceipt, ReportSource, ReportStatus, ReportTally, StoredReport, UnixTime,
 };
 pub use sqlite::SqliteStore;
 
@@ -188,4 +188,15 @@ pub trait Store: Send + Sync {
     /// Removes held messages held before `cutoff`, in any state but releasing (an
     /// operator's purge by age). Returns how many.
     fn purge_held_before(&self, cutoff: UnixTime) -> Result<u64, StoreError>;
+
+    // --- Following reports (the daemon's metrics) ---------------------------------------
+
+    /// The number of the newest report, 0 when there is none: where a reader that counts
+    /// reports from now on starts.
+    fn last_report_id(&self) -> Result<i64, StoreError>;
+
+    /// Reports numbered above `after`, recorded by any process (the operator commands
+    /// write them), oldest first, at most `limit` reports, each with the outcomes it
+    /// applies to ([`ReportTally`]).
+    fn reports_after(&self, after: i64, limit: u32) -> Result<Vec<ReportTally>, StoreError>;
 }

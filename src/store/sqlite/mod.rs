@@ -27,7 +27,8 @@ use super::figures::{self, ActionCount, DomainFigures, Evidence, UnmatchedCount}
 use super::record::{
     AuditItem, Claim, DomainOutcome, HeldFilter, HeldMessage, HeldState, HeldSummary, HeldTotals,
     Hold, HoldOutcome, JournalEntry, MessageKey, NewReport, PurgeCounts, ReleaseOutcome,
-    ReportKind, ReportReceipt, ReportSource, ReportStatus, StoredReport, UnixTime, now,
+    ReportKind, ReportReceipt, ReportSource, ReportStatus, ReportTally, StoredReport, UnixTime,
+    now,
 };
 use super::{DAY, Store, StoreError, StoreOptions, sample};
 use crate::policy::{Action, domain};
@@ -41,6 +42,9 @@ const MAX_VERDICT_ID: usize = 64;
 /// A store in one SQLite file.
 pub struct SqliteStore {
     path: PathBuf,
+    /// The device and inode of the file when it was opened: a write is confirmed only
+    /// while the path still names this file (see [`SqliteStore::check_in_place`]).
+    identity: (u64, u64),
     options: StoreOptions,
     writer: Mutex<Writer>,
     reader: Mutex<Connection>,
@@ -75,8 +79,14 @@ impl SqliteStore {
         open::prepare_file(path)?;
         let writer = open::connect(path, options.busy_timeout, true)?;
         let reader = open::connect(path, options.busy_timeout, false)?;
+        let identity = file_identity(path).map_err(|e| StoreError::Io {
+            path: path.to_path_buf(),
+            operation: "open the store",
+            detail: e.to_string(),
+        })?;
         Ok(SqliteStore {
             path: path.to_path_buf(),
+            identity,
             options,
             writer: Mutex::new(Writer {
                 conn: writer,
@@ -106,6 +116,25 @@ impl SqliteStore {
             }
             Ok(found)
         })
+    }
+
+    /// Fails with [`StoreError::Gone`] unless the store path still names the file that
+    /// was opened. SQLite goes on writing to a file that was deleted or renamed (its
+    /// descriptors stay valid), so without this check a hold committed after an operator
+    /// removed the store folder would be confirmed and then lost when the process exits.
+    fn check_in_place(&self, operation: &'static str) -> Result<(), StoreError> {
+        let gone = |detail: String| StoreError::Gone {
+            path: self.path.clone(),
+            detail: format!("{detail} while trying to {operation}"),
+        };
+        match file_identity(&self.path) {
+            Ok(identity) if identity == self.identity => Ok(()),
+            Ok(_) => Err(gone("another file now has its name".to_string())),
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+                Err(gone("the file or its folder no longer exists".to_string()))
+            }
+            Err(e) => Err(gone(format!("it can no longer be looked up: {e}"))),
+        }
     }
 
     fn ctx(&self, operation: &'static str) -> Ctx<'_> {
@@ -140,6 +169,9 @@ impl SqliteStore {
             .map_err(|e| ctx.sql(e))?;
         let out = f(&tx, ctx).map_err(|e| ctx.map(e))?;
         tx.commit().map_err(|e| ctx.sql(e))?;
+        drop(guard);
+        // After the commit: a file removed before or during it took the write with it.
+        self.check_in_place(operation)?;
         Ok(out)
     }
 
@@ -186,6 +218,13 @@ impl SqliteStore {
             }
         }
     }
+}
+
+/// The device and inode number of the file at `path`, following no symbolic link.
+fn file_identity(path: &Path) -> std::io::Result<(u64, u64)> {
+    use std::os::unix::fs::MetadataExt;
+    let meta = std::fs::symlink_metadata(path)?;
+    Ok((meta.dev(), meta.ino()))
 }
 
 // --- Encoding helpers ----------------------------------------------------------------------
@@ -1029,5 +1068,58 @@ impl Store for SqliteStore {
             "held",
             cutoff,
         )
+    }
+
+    fn last_report_id(&self) -> Result<i64, StoreError> {
+        self.read("find the newest report", |tx| {
+            Ok(tx
+                .prepare_cached("SELECT coalesce(max(id), 0) FROM report")?
+                .query_row([], |r| r.get(0))?)
+        })
+    }
+
+    fn reports_after(&self, after: i64, limit: u32) -> Result<Vec<ReportTally>, StoreError> {
+        self.read_ctx("read new reports", |tx, ctx| {
+            // One row per report and domain it applies to; a report with none (unmatched,
+            // or its verdict purged) still gives one row, with NULL domain columns.
+            let mut stmt = tx.prepare_cached(
+                "SELECT r.id, r.kind, r.source, r.status, d.domain, d.recipients, d.action, d.enforced
+                 FROM report r
+                 LEFT JOIN journal_domain d ON d.journal_id = r.journal_id AND r.status = 0
+                      AND (r.domain IS NULL OR r.domain = d.domain)
+                 WHERE r.id IN (SELECT id FROM report WHERE id > ?1 ORDER BY id LIMIT ?2)
+                 ORDER BY r.id, d.ord",
+            )?;
+            let mut rows = stmt.query(params![after, i64::from(limit)])?;
+            let mut out: Vec<ReportTally> = Vec::new();
+            while let Some(r) = rows.next()? {
+                let id: i64 = r.get(0)?;
+                if out.last().is_none_or(|t| t.id != id) {
+                    let (kind, source, status): (i64, i64, i64) = (r.get(1)?, r.get(2)?, r.get(3)?);
+                    out.push(ReportTally {
+                        id,
+                        kind: ReportKind::from_code(kind)
+                            .ok_or_else(|| ctx.damaged(format!("report {id}: kind {kind}")))?,
+                        source: ReportSource::from_code(source)
+                            .ok_or_else(|| ctx.damaged(format!("report {id}: source {source}")))?,
+                        status: ReportStatus::from_code(status)
+                            .ok_or_else(|| ctx.damaged(format!("report {id}: status {status}")))?,
+                        outcomes: Vec::new(),
+                    });
+                }
+                let domain: Option<String> = r.get(4)?;
+                if let (Some(domain), Some(tally)) = (domain, out.last_mut()) {
+                    let recipients: i64 = r.get(5)?;
+                    tally.outcomes.push(DomainOutcome {
+                        domain,
+                        recipients: u32::try_from(recipients)
+                            .map_err(|_| ctx.damaged(format!("recipient count {recipients}")))?,
+                        action: action_of(r.get(6)?, ctx)?,
+                        enforced: action_of(r.get(7)?, ctx)?,
+                    });
+                }
+            }
+            Ok(out)
+        })
     }
 }
