@@ -759,6 +759,16 @@ pub enum FailureMode {
     Defer,
 }
 
+impl FailureMode {
+    /// The mode as the configuration writes it.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            FailureMode::Accept => "accept",
+            FailureMode::Defer => "defer",
+        }
+    }
+}
+
 /// Log output.
 #[derive(Debug, Clone, PartialEq, Default, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]

@@ -26,7 +26,24 @@ fn loopback() -> Config {
     let mut config = Config::default();
     config.listen.tcp = Some("127.0.0.1:0".parse().expect("addr"));
     config.metrics = Some("127.0.0.1:0".parse().expect("addr"));
+    config.store.path = fresh_store_path();
     config
+}
+
+/// A store file of its own for each daemon, in one temporary folder for the test binary
+/// (never the user's own state folder).
+pub(crate) fn fresh_store_path() -> std::path::PathBuf {
+    use std::sync::atomic::{AtomicUsize, Ordering};
+    static DIR: OnceLock<tempfile::TempDir> = OnceLock::new();
+    static NEXT: AtomicUsize = AtomicUsize::new(0);
+    let dir = DIR.get_or_init(|| {
+        tempfile::Builder::new()
+            .prefix("tamis-it-stores")
+            .tempdir()
+            .expect("temp dir")
+    });
+    dir.path()
+        .join(format!("store-{}.sqlite", NEXT.fetch_add(1, Ordering::SeqCst)))
 }
 
 async fn daemon(config: Config) -> (Running, Arc<Metrics>) {
@@ -784,7 +801,7 @@ fn a_garbage_model_before_sighup_leaves_the_old_model_serving() {
     std::fs::write(
         &config,
         format!(
-            "metrics = \"127.0.0.1:{status}\"\n[listen]\ntcp = \"127.0.0.1:{relay}\"\n[model]\npath = \"model.tamis\"\n"
+            "metrics = \"127.0.0.1:{status}\"\n[listen]\ntcp = \"127.0.0.1:{relay}\"\n[model]\npath = \"model.tamis\"\n[store]\npath = \"store.sqlite\"\n"
         ),
     )
     .expect("write config");
@@ -876,6 +893,9 @@ fn tamis_demo_prints_a_verdict_table_per_domain() {
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_tamis"))
         .args(["demo", "--messages", "80", "--dir"])
         .arg(dir.path())
+        // The demo's daemon keeps its store in the default place: keep it in the test's
+        // folder, not the user's own state folder.
+        .env("STATE_DIRECTORY", dir.path())
         .output()
         .expect("run tamis demo");
     assert!(
