@@ -657,14 +657,14 @@ pub fn default_store_path_from(
     env: impl Fn(&str) -> Option<std::ffi::OsString>,
     writable: impl Fn(&Path) -> bool,
 ) -> (PathBuf, StoreOrigin) {
-    let absolute = |name: &str| {
-        env(name)
-            .map(PathBuf::from)
-            .filter(|p| p.is_absolute())
-    };
+    let absolute = |name: &str| env(name).map(PathBuf::from).filter(|p| p.is_absolute());
     // systemd joins several folders with ':'; the first is the unit's own.
     if let Some(state) = env("STATE_DIRECTORY")
-        .and_then(|v| v.to_str().and_then(|s| s.split(':').next()).map(PathBuf::from))
+        .and_then(|v| {
+            v.to_str()
+                .and_then(|s| s.split(':').next())
+                .map(PathBuf::from)
+        })
         .filter(|p| p.is_absolute())
     {
         return (state.join(STORE_FILE_NAME), StoreOrigin::StateDirectory);
@@ -1387,7 +1387,7 @@ mod tests {
             ("HOME", "/home/u"),
         ]);
         assert_eq!(
-            default_store_path_from(&all, |_| true),
+            default_store_path_from(all, |_| true),
             (
                 PathBuf::from("/var/lib/tamis-unit/store.sqlite"),
                 StoreOrigin::StateDirectory
@@ -1395,11 +1395,11 @@ mod tests {
         );
         let user = env(&[("XDG_STATE_HOME", "/home/u/.state"), ("HOME", "/home/u")]);
         assert_eq!(
-            default_store_path_from(&user, |p| p == Path::new("/var/lib/tamis")),
+            default_store_path_from(user, |p| p == Path::new("/var/lib/tamis")),
             (PathBuf::from(DEFAULT_STORE_PATH), StoreOrigin::System)
         );
         assert_eq!(
-            default_store_path_from(&user, nothing_writable),
+            default_store_path_from(user, nothing_writable),
             (
                 PathBuf::from("/home/u/.state/tamis/store.sqlite"),
                 StoreOrigin::User
@@ -1408,7 +1408,7 @@ mod tests {
         // A relative XDG_STATE_HOME is to be ignored (XDG Base Directory Specification).
         let home = env(&[("XDG_STATE_HOME", "rel"), ("HOME", "/home/u")]);
         assert_eq!(
-            default_store_path_from(&home, nothing_writable).0,
+            default_store_path_from(home, nothing_writable).0,
             PathBuf::from("/home/u/.local/state/tamis/store.sqlite")
         );
         assert_eq!(

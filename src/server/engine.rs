@@ -107,7 +107,8 @@ impl Engine {
 
     /// Scores one raw message. Blocking: call from a blocking thread.
     pub fn score(&self, raw: &[u8]) -> Result<Score, ScoreError> {
-        self.score_explained(raw, 0, |_| false).map(|(score, _)| score)
+        self.score_explained(raw, 0, |_| false)
+            .map(|(score, _)| score)
     }
 
     /// Scores one raw message and, when `explain` says so for its score, names the (at

@@ -498,8 +498,7 @@ impl Keeping {
                         source_name(tally.source),
                         outcome.enforced,
                     );
-                    if tally.source == ReportSource::Release
-                        && outcome.action == Action::Quarantine
+                    if tally.source == ReportSource::Release && outcome.action == Action::Quarantine
                     {
                         self.metrics.release(&outcome.domain);
                     }

@@ -30,12 +30,12 @@ use crate::config::Limits as ConfigLimits;
 use crate::logsafe::safe;
 use crate::metrics::Metrics;
 use crate::policy::{self, Action, Decision, HeaderEdit, UnscannedReason};
-use crate::store::MessageKey;
 use crate::proto::address::{self, Role};
 use crate::proto::{
     Edit, EditOp, FaultCode, Frame, Keep, Limits, MIN_MAX_FRAME, Phase, RecipientAction,
     SessionState, Verdict, encode_frame_within, parse_frame,
 };
+use crate::store::MessageKey;
 
 /// Everything a session needs from the daemon.
 #[derive(Clone)]
@@ -427,8 +427,7 @@ where
                 self.append(&data[..n]).await?;
                 // ENOUGH only when nothing of the message may be held (PROTOCOL.md §4.5):
                 // a message that may be quarantined is kept whole.
-                if !self.message.keep_whole && !self.message.enough_sent && self.scan_room() == 0
-                {
+                if !self.message.keep_whole && !self.message.enough_sent && self.scan_room() == 0 {
                     self.message.enough_sent = true;
                     self.send(&Frame::Enough).await?;
                 }
@@ -648,8 +647,10 @@ where
             let metrics = Arc::clone(&self.ctx.metrics);
             // Scoring, and the hold that must reach the disk before the verdict leaves,
             // wait on the CPU and the disk: a blocking thread, not an async worker.
-            tokio::task::spawn_blocking(move || judge(&engine, keeping.as_deref(), &metrics, message))
-                .await
+            tokio::task::spawn_blocking(move || {
+                judge(&engine, keeping.as_deref(), &metrics, message)
+            })
+            .await
         };
         let judged = match judged {
             Ok(j) => j,
@@ -726,7 +727,14 @@ where
             }
         };
         reasons.extend(settled.notes);
-        log_verdict(&verdict_id, &settled.decisions, &settled.held, margin, scan_seconds, engine);
+        log_verdict(
+            &verdict_id,
+            &settled.decisions,
+            &settled.held,
+            margin,
+            scan_seconds,
+            engine,
+        );
         Verdict {
             verdict_id,
             margin,
@@ -788,9 +796,9 @@ fn judge(
     let scan_seconds = started.elapsed().as_secs_f64();
     let (score, features, decisions, unscanned) = match scored {
         Ok((score, features)) => {
-            let decisions = d
-                .policy
-                .decide_each(&message.recipients, score.margin, score.probability);
+            let decisions =
+                d.policy
+                    .decide_each(&message.recipients, score.margin, score.probability);
             (Some(score), features, decisions, None)
         }
         Err(e) => {

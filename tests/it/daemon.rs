@@ -17,7 +17,7 @@ use tamis::server::engine::{Decisions, Engine, SharedEngine};
 use tamis::server::listen::{Running, start};
 
 /// The built-in demonstration model, trained once for the whole test binary.
-fn model() -> &'static LinearModel {
+pub(crate) fn model() -> &'static LinearModel {
     static MODEL: OnceLock<LinearModel> = OnceLock::new();
     MODEL.get_or_init(|| tamis::model::builtin::demonstration_model().expect("builds"))
 }
@@ -42,8 +42,10 @@ pub(crate) fn fresh_store_path() -> std::path::PathBuf {
             .tempdir()
             .expect("temp dir")
     });
-    dir.path()
-        .join(format!("store-{}.sqlite", NEXT.fetch_add(1, Ordering::SeqCst)))
+    dir.path().join(format!(
+        "store-{}.sqlite",
+        NEXT.fetch_add(1, Ordering::SeqCst)
+    ))
 }
 
 async fn daemon(config: Config) -> (Running, Arc<Metrics>) {
@@ -183,7 +185,7 @@ fn still_serves(addr: SocketAddr) {
     assert!(verdict.margin.is_finite());
 }
 
-fn http_get(addr: SocketAddr, path: &str) -> String {
+pub(crate) fn http_get(addr: SocketAddr, path: &str) -> String {
     let mut s = TcpStream::connect(addr).expect("connect");
     s.set_read_timeout(Some(Duration::from_secs(10)))
         .expect("timeout");
@@ -775,7 +777,7 @@ async fn metrics_pass_promtool_and_are_scraped_by_prometheus() {
     assert!(running.stop().await);
 }
 
-fn free_port() -> u16 {
+pub(crate) fn free_port() -> u16 {
     std::net::TcpListener::bind("127.0.0.1:0")
         .expect("bind")
         .local_addr()
@@ -783,7 +785,7 @@ fn free_port() -> u16 {
         .port()
 }
 
-fn metric(status: SocketAddr, prefix: &str) -> Option<f64> {
+pub(crate) fn metric(status: SocketAddr, prefix: &str) -> Option<f64> {
     let text = http_get(status, "/metrics");
     text.lines()
         .find(|l| l.starts_with(prefix))
