@@ -3,13 +3,17 @@
 //! Invariants: one read buffer per connection, advanced only past whole frames, and given
 //! back between messages after a large frame; a declared frame length is checked against
 //! the limit before its payload is waited for; the message being assembled never grows past
-//! the scan limit nor past what the daemon-wide buffer budget lends (bytes beyond are read
-//! and dropped, the message is still scored); one `FIELD` is one header line in it; a
-//! `VERDICT` always fits the client's `max_frame`; `HELLO` must come within the handshake
-//! timeout and `PING` alone never restarts the idle timeout; scoring runs on a blocking
-//! thread with the engine the message started with; every value from the peer is escaped
-//! before it is logged. Every error in a session ends in that session (logged and
-//! counted), never in the listener.
+//! its cap nor past what the daemon-wide buffer budget lends (bytes beyond are read and
+//! dropped, the message is still scored); its cap is the whole message (up to
+//! `max_message`) when a recipient may be quarantined, else the scan limit, and `ENOUGH` is
+//! sent only in the second case (PROTOCOL.md §4.5); a message not kept whole is marked so
+//! and never held; one `FIELD` is one header line in it; a `VERDICT` always fits the
+//! client's `max_frame` and is sent only after the store returned from holding the message
+//! (`super::keeping`); `HELLO` must come within the handshake timeout and `PING` alone
+//! never restarts the idle timeout; scoring and holding run on a blocking thread with the
+//! engine the message started with; every value from the peer is escaped before it is
+//! logged. Every error in a session ends in that session (logged and counted), never in
+//! the listener.
 
 use std::sync::Arc;
 use std::time::Duration;
@@ -474,7 +478,7 @@ where
     fn notice_text(&self, code: FaultCode, frame: &Frame) -> String {
         match (code, frame) {
             (FaultCode::MessageTooLarge, _) => {
-                "message larger than the scan limit; the rest is not read".to_string()
+                "message larger than max_message; the rest is not read".to_string()
             }
             (FaultCode::TooMany, _) => {
                 "too many recipients or fields; the extra ones are ignored".to_string()
