@@ -22,6 +22,7 @@
 //!   go through the batching [`JournalWriter`]; held ones are journalled by the hold.
 //! - **Every store error is logged and counted**, by kind, and never ends a session.
 //! - Blocking: [`Keeping::settle`] waits for the disk; call it from a blocking thread.
+//!   Holds of concurrent sessions share one flush to disk ([`HoldWriter`]).
 
 use std::path::Path;
 use std::sync::{Arc, RwLock};
@@ -36,8 +37,8 @@ use crate::metrics::Metrics;
 use crate::policy::{Action, Decision, domain};
 use crate::store::batch::Refused;
 use crate::store::{
-    BatchSettings, DomainOutcome, Hold, HoldOutcome, JournalEntry, JournalWriter, MessageKey,
-    ReportKind, ReportSource, ReportStatus, Store, StoreError,
+    BatchSettings, DomainOutcome, HoldOutcome, HoldRequest, HoldSettings, HoldWriter, JournalEntry,
+    JournalWriter, MessageKey, ReportKind, ReportSource, ReportStatus, Store, StoreError,
 };
 
 /// How many features are named per journal entry.
@@ -94,8 +95,8 @@ pub struct Decided<'a> {
     pub features: Vec<String>,
     /// The envelope sender as the relay sent it.
     pub sender: &'a str,
-    /// The message as kept.
-    pub message: &'a [u8],
+    /// The message as kept (moved into the store's hold writer when it is held).
+    pub message: Vec<u8>,
     /// The message's size as the relay sent it (field names, values and body bytes).
     pub size: u64,
     /// The hash of its Message-ID.
@@ -161,6 +162,8 @@ pub struct KeepingSettings {
     pub stale_claim: Duration,
     /// How the journal writer batches.
     pub batch: BatchSettings,
+    /// How the hold writer groups holds.
+    pub holds: HoldSettings,
 }
 
 impl Default for KeepingSettings {
@@ -173,6 +176,7 @@ impl Default for KeepingSettings {
             purge_every: Duration::from_secs(3600),
             stale_claim: Duration::from_secs(3600),
             batch: BatchSettings::default(),
+            holds: HoldSettings::default(),
         }
     }
 }
@@ -229,6 +233,7 @@ fn create_private_folder(folder: &Path) -> std::io::Result<()> {
 /// The store as the daemon uses it: holds, the journal writer, and upkeep.
 pub struct Keeping {
     store: Arc<dyn Store>,
+    holds: HoldWriter,
     journal: RwLock<Option<JournalWriter>>,
     metrics: Arc<Metrics>,
     settings: KeepingSettings,
@@ -270,8 +275,11 @@ impl Keeping {
         };
         let writer = JournalWriter::start(Arc::clone(&store), settings.batch.clone(), on_error)
             .map_err(OpenError::Writer)?;
+        let holds = HoldWriter::start(Arc::clone(&store), settings.holds.clone())
+            .map_err(OpenError::Writer)?;
         Ok(Arc::new(Keeping {
             store,
+            holds,
             journal: RwLock::new(Some(writer)),
             metrics,
             settings,
@@ -322,19 +330,23 @@ impl Keeping {
             .map(|d| d.recipient.clone())
             .collect();
         let journal_entry = entry(&decided, &decided.decisions, &decided.verdict_id);
-        let hold = Hold {
-            sender: decided.sender,
-            recipients: &held,
-            message: decided.message,
+        let mut decided = decided;
+        let message = std::mem::take(&mut decided.message);
+        let bytes = message.len() as u64;
+        let request = HoldRequest {
+            entry: journal_entry,
+            sender: decided.sender.to_string(),
+            recipients: held,
+            message,
         };
         let started = Instant::now();
-        let outcome = self.store.hold(&journal_entry, &hold);
+        let outcome = self.holds.hold(request);
         let seconds = started.elapsed().as_secs_f64();
         match outcome {
             Ok(HoldOutcome::Held) => {
                 self.metrics.hold(true, seconds);
                 // The gauges move now; the store's own totals follow shortly.
-                self.metrics.add_held(decided.message.len() as u64, 0);
+                self.metrics.add_held(bytes, 0);
                 self.wake.notify_one();
                 Settled {
                     verdict_id: decided.verdict_id,
@@ -400,7 +412,8 @@ impl Keeping {
         }
     }
 
-    /// Writes what the journal writer has queued and stops it, waiting at most `within`.
+    /// Stops the hold writer, writes what the journal writer has queued and stops it,
+    /// waiting at most `within`.
     /// Returns false when the time ran out first (the writer goes on in the background
     /// until the process exits).
     pub async fn close(self: &Arc<Self>, within: Duration) -> bool {
@@ -408,10 +421,14 @@ impl Keeping {
             Ok(mut guard) => guard.take(),
             Err(poisoned) => poisoned.into_inner().take(),
         };
-        let Some(writer) = writer else {
-            return true;
-        };
-        let closing = tokio::task::spawn_blocking(move || writer.close());
+        let keeping = Arc::clone(self);
+        let closing = tokio::task::spawn_blocking(move || {
+            // Sessions are done: no hold is waiting, the thread just stops.
+            keeping.holds.close();
+            if let Some(writer) = writer {
+                writer.close();
+            }
+        });
         match tokio::time::timeout(within, closing).await {
             Ok(_) => true,
             Err(_) => {

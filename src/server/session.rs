@@ -810,6 +810,7 @@ fn judge(
             (None, Vec::new(), decisions, Some(e.to_string()))
         }
     };
+    let bytes = message.raw.len() as u64;
     let decided = Decided {
         verdict_id,
         model: engine.origin(),
@@ -817,7 +818,7 @@ fn judge(
         decisions,
         features,
         sender: &message.sender,
-        message: &message.raw,
+        message: message.raw,
         size: message.size,
         message_key: message.message_key,
         subject: message.subject,
@@ -832,7 +833,7 @@ fn judge(
         settled,
         score,
         scan_seconds,
-        bytes: message.raw.len() as u64,
+        bytes,
         unscanned,
         on_failure: d.on_failure,
     }

@@ -26,12 +26,14 @@
 //!   as unmatched and never counted ([`ReportStatus`]).
 //!
 //! The figures per domain and their exact definitions are in [`figures`]; the audit
-//! sample's method in [`sample`]; [`JournalWriter`] batches journal entries for the daemon.
+//! sample's method in [`sample`]; [`JournalWriter`] batches journal entries for the daemon,
+//! and [`HoldWriter`] commits the holds of concurrent sessions together.
 
 pub mod batch;
 pub mod blob;
 pub mod error;
 pub mod figures;
+pub mod holds;
 pub mod record;
 pub mod sample;
 pub mod sqlite;
@@ -42,6 +44,7 @@ use std::time::Duration;
 pub use batch::{BatchSettings, JournalWriter};
 pub use error::StoreError;
 pub use figures::{DomainFigures, Rate, TargetCheck};
+pub use holds::{HoldRequest, HoldSettings, HoldWriter};
 pub use record::{
     AuditItem, Claim, DomainOutcome, HeldFilter, HeldMessage, HeldState, HeldSummary, HeldTotals,
     Hold, HoldOutcome, JournalEntry, MessageKey, NewReport, PurgeCounts, ReleaseOutcome,
@@ -199,4 +202,19 @@ pub trait Store: Send + Sync {
     /// write them), oldest first, at most `limit` reports, each with the outcomes it
     /// applies to ([`ReportTally`]).
     fn reports_after(&self, after: i64, limit: u32) -> Result<Vec<ReportTally>, StoreError>;
+
+    // --- Holding many at once (group commit) --------------------------------------------
+
+    /// Holds several messages with one commit flushed to disk once: for each, what
+    /// [`Store::hold`] does, the results in order. A message the store refuses as such
+    /// (an invalid entry) costs only itself. The default holds them one by one.
+    fn hold_all(
+        &self,
+        items: &[(&JournalEntry, &Hold<'_>)],
+    ) -> Vec<Result<HoldOutcome, StoreError>> {
+        items
+            .iter()
+            .map(|(entry, hold)| self.hold(entry, hold))
+            .collect()
+    }
 }

@@ -220,6 +220,97 @@ impl SqliteStore {
     }
 }
 
+/// A hold checked, compressed and hashed, ready for its transaction.
+struct PreparedHold<'a> {
+    entry: &'a JournalEntry,
+    hold: &'a Hold<'a>,
+    stored: Vec<u8>,
+    key: Vec<u8>,
+    recipients: String,
+    expires_at: i64,
+}
+
+impl SqliteStore {
+    /// Checks a hold and does its CPU work (compression, hashing) before any lock.
+    fn prepare_hold<'a>(
+        &self,
+        entry: &'a JournalEntry,
+        hold: &'a Hold<'a>,
+    ) -> Result<PreparedHold<'a>, StoreError> {
+        let ctx = self.ctx("hold a message");
+        check_entry(entry).map_err(|e| ctx.invalid(e))?;
+        if hold.recipients.is_empty() {
+            return Err(ctx.invalid(format!(
+                "verdict {} holds no recipient; give the recipients whose copy is held",
+                entry.verdict_id
+            )));
+        }
+        Ok(PreparedHold {
+            entry,
+            hold,
+            stored: blob::compress(hold.message),
+            key: content_key(hold),
+            recipients: serde_json::to_string(hold.recipients).unwrap_or_else(|_| "[]".to_string()),
+            expires_at: entry
+                .at
+                .saturating_add(i64::from(self.options.quarantine_days) * DAY),
+        })
+    }
+}
+
+/// Writes one hold inside a transaction: nothing when the same message is already held
+/// under another verdict.
+fn write_hold(
+    tx: &Connection,
+    ctx: Ctx<'_>,
+    p: &PreparedHold<'_>,
+    record_subject: bool,
+) -> Result<HoldOutcome, Failure> {
+    let (entry, hold) = (p.entry, p.hold);
+    let earlier: Option<String> = tx
+        .prepare_cached(
+            "SELECT j.verdict_id FROM held h JOIN journal j ON j.id = h.journal_id
+             WHERE h.content_key = ?1 AND h.state = ?2 AND j.verdict_id != ?3 LIMIT 1",
+        )?
+        .query_row(
+            params![p.key, HeldState::Held.code(), entry.verdict_id],
+            |r| r.get(0),
+        )
+        .optional()?;
+    if let Some(verdict_id) = earlier {
+        return Ok(HoldOutcome::AlreadyHeld { verdict_id });
+    }
+    let mut models = HashMap::new();
+    let journal = match insert_entry(tx, ctx, entry, record_subject, &mut models)? {
+        Some(id) => id,
+        None => journal_id(tx, &entry.verdict_id)?
+            .ok_or_else(|| ctx.damaged("a journal entry vanished inside its transaction"))?,
+    };
+    let inserted = tx
+        .prepare_cached(
+            "INSERT INTO held (journal_id, held_at, expires_at, state, state_at, sender, recipients, size, stored_size, content_key)
+             VALUES (?1, ?2, ?3, ?4, ?2, ?5, ?6, ?7, ?8, ?9)
+             ON CONFLICT (journal_id) DO NOTHING",
+        )?
+        .execute(params![
+            journal,
+            entry.at,
+            p.expires_at,
+            HeldState::Held.code(),
+            hold.sender,
+            p.recipients,
+            to_i64(hold.message.len() as u64, "message size", ctx)?,
+            to_i64(p.stored.len() as u64, "stored size", ctx)?,
+            p.key,
+        ])?;
+    if inserted == 1 {
+        let held_id = tx.last_insert_rowid();
+        tx.prepare_cached("INSERT INTO held_content (held_id, content) VALUES (?1, ?2)")?
+            .execute(params![held_id, p.stored])?;
+    }
+    Ok(HoldOutcome::Held)
+}
+
 /// The device and inode number of the file at `path`, following no symbolic link.
 fn file_identity(path: &Path) -> std::io::Result<(u64, u64)> {
     use std::os::unix::fs::MetadataExt;
@@ -606,66 +697,10 @@ impl Store for SqliteStore {
     }
 
     fn hold(&self, entry: &JournalEntry, hold: &Hold<'_>) -> Result<HoldOutcome, StoreError> {
-        let ctx = self.ctx("hold a message");
-        check_entry(entry).map_err(|e| ctx.invalid(e))?;
-        if hold.recipients.is_empty() {
-            return Err(ctx.invalid(format!(
-                "verdict {} holds no recipient; give the recipients whose copy is held",
-                entry.verdict_id
-            )));
-        }
-        // Compress and hash before taking the write lock: CPU work, not the store's.
-        let stored = blob::compress(hold.message);
-        let key = content_key(hold);
-        let recipients =
-            serde_json::to_string(hold.recipients).unwrap_or_else(|_| "[]".to_string());
-        let expires_at = entry
-            .at
-            .saturating_add(i64::from(self.options.quarantine_days) * DAY);
+        let prepared = self.prepare_hold(entry, hold)?;
         let record_subject = self.options.record_subject;
         self.write("hold a message", true, |tx, ctx| {
-            let earlier: Option<String> = tx
-                .prepare_cached(
-                    "SELECT j.verdict_id FROM held h JOIN journal j ON j.id = h.journal_id
-                     WHERE h.content_key = ?1 AND h.state = ?2 AND j.verdict_id != ?3 LIMIT 1",
-                )?
-                .query_row(
-                    params![key, HeldState::Held.code(), entry.verdict_id],
-                    |r| r.get(0),
-                )
-                .optional()?;
-            if let Some(verdict_id) = earlier {
-                return Ok(HoldOutcome::AlreadyHeld { verdict_id });
-            }
-            let mut models = HashMap::new();
-            let journal = match insert_entry(tx, ctx, entry, record_subject, &mut models)? {
-                Some(id) => id,
-                None => journal_id(tx, &entry.verdict_id)?
-                    .ok_or_else(|| ctx.damaged("a journal entry vanished inside its transaction"))?,
-            };
-            let inserted = tx
-                .prepare_cached(
-                    "INSERT INTO held (journal_id, held_at, expires_at, state, state_at, sender, recipients, size, stored_size, content_key)
-                     VALUES (?1, ?2, ?3, ?4, ?2, ?5, ?6, ?7, ?8, ?9)
-                     ON CONFLICT (journal_id) DO NOTHING",
-                )?
-                .execute(params![
-                    journal,
-                    entry.at,
-                    expires_at,
-                    HeldState::Held.code(),
-                    hold.sender,
-                    recipients,
-                    to_i64(hold.message.len() as u64, "message size", ctx)?,
-                    to_i64(stored.len() as u64, "stored size", ctx)?,
-                    key,
-                ])?;
-            if inserted == 1 {
-                let held_id = tx.last_insert_rowid();
-                tx.prepare_cached("INSERT INTO held_content (held_id, content) VALUES (?1, ?2)")?
-                    .execute(params![held_id, stored])?;
-            }
-            Ok(HoldOutcome::Held)
+            write_hold(tx, ctx, &prepared, record_subject)
         })
     }
 
@@ -1121,5 +1156,66 @@ impl Store for SqliteStore {
             }
             Ok(out)
         })
+    }
+
+    fn hold_all(
+        &self,
+        items: &[(&JournalEntry, &Hold<'_>)],
+    ) -> Vec<Result<HoldOutcome, StoreError>> {
+        // Checked, compressed and hashed first, outside the write lock.
+        let prepared: Vec<Result<PreparedHold<'_>, StoreError>> = items
+            .iter()
+            .map(|(entry, hold)| self.prepare_hold(entry, hold))
+            .collect();
+        let record_subject = self.options.record_subject;
+        let written = self.write("hold messages", true, |tx, ctx| {
+            let mut out = Vec::with_capacity(prepared.len());
+            for item in &prepared {
+                let Ok(p) = item else {
+                    out.push(None);
+                    continue;
+                };
+                // A savepoint per message: one that cannot be kept costs only itself.
+                tx.execute_batch("SAVEPOINT one_hold")?;
+                match write_hold(tx, ctx, p, record_subject) {
+                    Ok(outcome) => {
+                        tx.execute_batch("RELEASE one_hold")?;
+                        out.push(Some(Ok(outcome)));
+                    }
+                    Err(Failure::Store(
+                        e @ (StoreError::Invalid { .. } | StoreError::DamagedRecord { .. }),
+                    )) => {
+                        tx.execute_batch("ROLLBACK TO one_hold; RELEASE one_hold")?;
+                        out.push(Some(Err(e)));
+                    }
+                    Err(other) => return Err(other),
+                }
+            }
+            Ok(out)
+        });
+        match written {
+            Ok(results) => prepared
+                .into_iter()
+                .zip(results)
+                .map(|(p, r)| match (p, r) {
+                    (Err(e), _) => Err(e),
+                    (Ok(_), Some(r)) => r,
+                    (Ok(_), None) => Err(self.ctx("hold messages").invalid("no result")),
+                })
+                .collect(),
+            // Too large together (a full disk, a file-size limit): each on its own, so the
+            // ones that still fit are kept.
+            Err(StoreError::Full { .. } | StoreError::Io { .. }) if items.len() > 1 => items
+                .iter()
+                .map(|(entry, hold)| self.hold(entry, hold))
+                .collect(),
+            Err(e) => prepared
+                .into_iter()
+                .map(|p| match p {
+                    Err(own) => Err(own),
+                    Ok(_) => Err(e.clone()),
+                })
+                .collect(),
+        }
     }
 }
