@@ -724,7 +724,11 @@ async fn metrics_pass_promtool_and_are_scraped_by_prometheus() {
         let body = response.split("\r\n\r\n").nth(1).expect("body").to_string();
         for family in ["tamis_messages_total", "tamis_margin", "tamis_scan_duration_seconds",
             "tamis_scanned_bytes_total", "tamis_connections_open", "tamis_protocol_errors_total",
-            "tamis_reloads_total", "tamis_model_info"] {
+            "tamis_reloads_total", "tamis_model_info", "tamis_would_quarantine_total",
+            "tamis_quarantine_not_held_total", "tamis_holds_total", "tamis_hold_duration_seconds",
+            "tamis_held_messages", "tamis_held_bytes", "tamis_store_errors_total",
+            "tamis_journal_entries_lost_total", "tamis_reports_total", "tamis_releases_total",
+            "tamis_reports_unmatched_total", "tamis_purged_total"] {
             assert!(body.contains(family), "{family} missing");
         }
         // External check: `promtool check metrics` from Debian's prometheus package.

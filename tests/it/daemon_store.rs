@@ -1470,3 +1470,152 @@ fn the_default_store_location_works_for_a_service_and_for_a_user() {
         "{err}"
     );
 }
+
+/// The false-positive rate per domain that README's PromQL gives from the daemon's
+/// counters, evaluated by a real Prometheus server scraping the daemon, equals the rate
+/// the store's figures compute from the journal and the reports.
+#[tokio::test(flavor = "multi_thread", worker_threads = 2)]
+async fn the_documented_promql_gives_the_false_positive_rate_of_the_figures() {
+    let dir = tempfile::tempdir().expect("temp dir");
+    let path = dir.path().join("store.sqlite");
+    let d = daemon(config(""), &path, StoreOptions::default(), quick_settings()).await;
+    let (addr, status) = (d.addr, d.status);
+    let store_path = path.clone();
+    let prom_dir = dir.path().join("prometheus");
+    tokio::task::spawn_blocking(move || {
+        let readme = include_str!("../../README.md");
+        let query = promql_block(readme, "tamis_reports_total").replace("[7d]", "[1h]");
+        // External check: a real Prometheus server (Debian's prometheus package).
+        let port = free_port();
+        std::fs::create_dir(&prom_dir).expect("mkdir");
+        let config = prom_dir.join("prometheus.yml");
+        std::fs::write(
+            &config,
+            format!(
+                "global:\n  scrape_interval: 1s\nscrape_configs:\n  - job_name: tamis\n    static_configs:\n      - targets: ['{status}']\n"
+            ),
+        )
+        .expect("write config");
+        let mut server = Command::new("prometheus")
+            .arg(format!("--config.file={}", config.display()))
+            .arg(format!("--storage.tsdb.path={}", prom_dir.join("data").display()))
+            .arg(format!("--web.listen-address=127.0.0.1:{port}"))
+            .stdout(Stdio::null())
+            .stderr(Stdio::null())
+            .spawn()
+            .expect("prometheus is installed by scripts/test");
+        let api = SocketAddr::from(([127, 0, 0, 1], port));
+        let value = |q: &str| -> Option<f64> {
+            TcpStream::connect(api).ok()?;
+            let reply = http_get(
+                api,
+                &format!("/api/v1/query?query={}", percent_encode(q)),
+            );
+            let body = reply.split("\r\n\r\n").nth(1)?;
+            let json: serde_json::Value = serde_json::from_str(body).ok()?;
+            json["data"]["result"]
+                .as_array()?
+                .iter()
+                .find(|r| r["metric"]["domain"] == "hold.test")?["value"][1]
+                .as_str()?
+                .parse()
+                .ok()
+        };
+        // The first scrape sees the counters at zero.
+        let started = Instant::now();
+        while value("tamis_messages_total{action=\"accept\"}").is_none() {
+            assert!(started.elapsed() < Duration::from_secs(60), "never scraped");
+            std::thread::sleep(Duration::from_millis(200));
+        }
+        // Traffic: legitimate mail accepted, junk held; people say some held mail was
+        // legitimate.
+        let mut client =
+            Client::connect(&addr.to_string(), Duration::from_secs(30)).expect("connect");
+        let to = rcpts(&["bob@hold.test"]);
+        let accepted = legitimate(12);
+        for raw in &accepted {
+            let v = client.scan("alice@sender.example", &to, raw).expect("verdict");
+            assert_eq!(actions(&v), vec![Action::Accept]);
+        }
+        let mut held = Vec::new();
+        for raw in junk().iter().skip(20).take(6) {
+            let v = client.scan("alice@sender.example", &to, raw).expect("verdict");
+            assert_eq!(actions(&v), vec![Action::Quarantine]);
+            held.push(v.verdict_id);
+        }
+        let store = reader(&store_path);
+        for id in held.iter().take(2) {
+            store
+                .report(&NewReport {
+                    verdict_id: id.clone(),
+                    kind: ReportKind::NotJunk,
+                    source: ReportSource::User,
+                    domain: Some("hold.test".to_string()),
+                    at: tamis::store::record::now(),
+                    features: None,
+                })
+                .expect("report");
+        }
+        wait_for_metric(
+            status,
+            "tamis_reports_total{domain=\"hold.test\",enforced=\"quarantine\",kind=\"not-junk\",source=\"user\"}",
+            2.0,
+        );
+        // The figures over the same mail, from the store.
+        let started = Instant::now();
+        let figures = loop {
+            let f = store.figures(0, Some("hold.test")).expect("figures");
+            if f.first().is_some_and(|f| f.by_action.accept == 12) {
+                break f;
+            }
+            assert!(started.elapsed() < Duration::from_secs(10), "journal incomplete");
+            std::thread::sleep(Duration::from_millis(50));
+        };
+        let expected = figures[0].false_positives.value.expect("a rate");
+        assert!((expected - 2.0 / 14.0).abs() < 1e-12, "{expected}");
+        // Prometheus catches up within a few scrapes.
+        let started = Instant::now();
+        let mut got = None;
+        while started.elapsed() < Duration::from_secs(30) {
+            got = value(&query);
+            if got.is_some_and(|g| (g - expected).abs() < 1e-9) {
+                break;
+            }
+            std::thread::sleep(Duration::from_millis(500));
+        }
+        let _ = server.kill();
+        let _ = server.wait();
+        assert!(
+            got.is_some_and(|g| (g - expected).abs() < 1e-9),
+            "PromQL gave {got:?}, the figures {expected}: {query}"
+        );
+    })
+    .await
+    .expect("task");
+    assert!(d.running.stop().await);
+}
+
+/// The text of the first ```promql block of `text` that mentions `needle`, without its
+/// comment lines.
+fn promql_block(text: &str, needle: &str) -> String {
+    text.split("```promql")
+        .skip(1)
+        .filter_map(|rest| rest.split("```").next())
+        .find(|block| block.contains(needle))
+        .unwrap_or_else(|| panic!("README has no ```promql block with {needle}"))
+        .lines()
+        .filter(|l| !l.trim_start().starts_with('#'))
+        .collect::<Vec<_>>()
+        .join(" ")
+}
+
+fn percent_encode(text: &str) -> String {
+    text.bytes()
+        .map(|b| match b {
+            b'A'..=b'Z' | b'a'..=b'z' | b'0'..=b'9' | b'-' | b'_' | b'.' | b'~' => {
+                (b as char).to_string()
+            }
+            _ => format!("%{b:02X}"),
+        })
+        .collect()
+}
