@@ -144,9 +144,15 @@ async fn daemon(
     };
     let engine = Engine::new(model().clone(), "test model", decisions).expect("engine");
     let metrics = Arc::new(Metrics::new(config.policy.domains().keys()).expect("metrics"));
+    let record_subject = options.record_subject;
     let store = SqliteStore::open(path, options).expect("open the store");
-    let keeping =
-        Keeping::start(Arc::new(store), Arc::clone(&metrics), settings, false).expect("keeping");
+    let keeping = Keeping::start(
+        Arc::new(store),
+        Arc::clone(&metrics),
+        settings,
+        record_subject,
+    )
+    .expect("keeping");
     let running = start_with(
         &config,
         SharedEngine::new(engine),
@@ -330,6 +336,10 @@ async fn a_quarantined_message_is_held_byte_for_byte_and_its_verdict_waits_for_t
             ]
         );
         assert_eq!(entry.model, "test model");
+        assert_eq!(
+            entry.subject, None,
+            "no Subject unless the store records it"
+        );
         assert!(entry.scanned);
         assert_eq!(entry.margin, Some(v.margin));
         assert_eq!(entry.size, wire_size(first));
@@ -373,7 +383,11 @@ async fn a_quarantined_message_is_held_byte_for_byte_and_its_verdict_waits_for_t
 async fn a_message_sent_again_while_held_gets_its_first_verdict_and_is_held_once() {
     let dir = tempfile::tempdir().expect("temp dir");
     let path = dir.path().join("store.sqlite");
-    let d = daemon(config(""), &path, StoreOptions::default(), quick_settings()).await;
+    let options = StoreOptions {
+        record_subject: true,
+        ..StoreOptions::default()
+    };
+    let d = daemon(config(""), &path, options, quick_settings()).await;
     let (addr, status) = (d.addr, d.status);
     let store_path = path.clone();
     tokio::task::spawn_blocking(move || {
@@ -392,6 +406,18 @@ async fn a_message_sent_again_while_held_gets_its_first_verdict_and_is_held_once
         assert_ne!(other.verdict_id, first.verdict_id);
         let store = reader(&store_path);
         assert_eq!(store.held_totals().expect("totals").messages, 2);
+        // This store records subjects (off by default: see the byte-for-byte test).
+        let subject = split_message(raw)
+            .0
+            .into_iter()
+            .find(|(n, _)| n.eq_ignore_ascii_case("Subject"))
+            .map(|(_, v)| String::from_utf8_lossy(&v).into_owned());
+        let entry = store
+            .journal_entry(&first.verdict_id)
+            .expect("read")
+            .expect("journalled");
+        assert!(subject.is_some());
+        assert_eq!(entry.subject, subject);
         assert_eq!(
             metric_line(status, "tamis_holds_total{outcome=\"already-held\"}"),
             Some(1.0)
