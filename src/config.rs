@@ -54,8 +54,12 @@ pub const MAX_SOCKET_PATH: usize = 107;
 pub const MIN_FRAME_BYTES: u32 = 4096;
 /// Longest subject prefix in characters.
 pub const MAX_SUBJECT_PREFIX: usize = 64;
-/// Default store file: under the daemon's state directory.
+/// The system's store file, for a daemon installed as a service with its own user:
+/// used when `/var/lib/tamis` exists and this process may write there (see
+/// [`default_store_path`] for the whole order).
 pub const DEFAULT_STORE_PATH: &str = "/var/lib/tamis/store.sqlite";
+/// The store's file name inside a state folder.
+pub const STORE_FILE_NAME: &str = "store.sqlite";
 /// Longest retention accepted, in days (100 years).
 pub const MAX_RETENTION_DAYS: u32 = 36_500;
 
@@ -242,6 +246,11 @@ impl Config {
             check_next_hop(hop).map_err(located)?;
         }
         self.status.check().map_err(located)?;
+        if !self.store.enabled && self.policy.quarantines_anywhere() {
+            return Err(located(
+                "store.enabled = false, but the policy quarantines mail (tag_only is off in some section), and a quarantined message must be kept in the store; enable the store, or set tag_only = true in every section".to_string(),
+            ));
+        }
         if let ModelSource::File(path) = &self.model
             && path.as_os_str().is_empty()
         {
@@ -627,14 +636,98 @@ fn check_subject_prefix(prefix: &str) -> Result<(), String> {
     Ok(())
 }
 
+/// Where a default store location came from (see [`default_store_path`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum StoreOrigin {
+    /// `$STATE_DIRECTORY`, which systemd sets for a unit with `StateDirectory=`.
+    StateDirectory,
+    /// `/var/lib/tamis`, which exists and this process may write.
+    System,
+    /// `$XDG_STATE_HOME/tamis` or `~/.local/state/tamis`: the user's own state folder,
+    /// created (mode 0700) when the daemon starts.
+    User,
+    /// None of the above could be used: `/var/lib/tamis`, which start-up will refuse with
+    /// a message saying to create it or set `[store] path`.
+    Fallback,
+}
+
+impl StoreOrigin {
+    /// Where the location came from, for the start-up line.
+    pub fn describe(self) -> &'static str {
+        match self {
+            StoreOrigin::StateDirectory => "the service's state directory ($STATE_DIRECTORY)",
+            StoreOrigin::System => "the system state folder",
+            StoreOrigin::User => "your user's state folder (no [store] path configured)",
+            StoreOrigin::Fallback => "the system state folder, which is not usable yet",
+        }
+    }
+}
+
+/// The store file used when the configuration sets no `[store] path`, first match wins:
+///
+/// 1. `$STATE_DIRECTORY/store.sqlite` — systemd's `StateDirectory=` (the first folder
+///    when it lists several);
+/// 2. `/var/lib/tamis/store.sqlite` when that folder exists and this process may write it
+///    (a packaged install creates it for the daemon's user);
+/// 3. `$XDG_STATE_HOME/tamis/store.sqlite`, else `~/.local/state/tamis/store.sqlite` — so
+///    `tamis serve` works for a user on a fresh machine; the folder is created at start;
+/// 4. `/var/lib/tamis/store.sqlite` otherwise (start-up then says what to do).
+///
+/// The daemon and the operator commands resolve it the same way, so they find the same
+/// store when run as the same user.
+pub fn default_store_path() -> (PathBuf, StoreOrigin) {
+    default_store_path_from(|name| std::env::var_os(name), writable_folder)
+}
+
+/// [`default_store_path`] with the environment and the writability check given, for
+/// tests.
+pub fn default_store_path_from(
+    env: impl Fn(&str) -> Option<std::ffi::OsString>,
+    writable: impl Fn(&Path) -> bool,
+) -> (PathBuf, StoreOrigin) {
+    let absolute = |name: &str| env(name).map(PathBuf::from).filter(|p| p.is_absolute());
+    // systemd joins several folders with ':'; the first is the unit's own.
+    if let Some(state) = env("STATE_DIRECTORY")
+        .and_then(|v| {
+            v.to_str()
+                .and_then(|s| s.split(':').next())
+                .map(PathBuf::from)
+        })
+        .filter(|p| p.is_absolute())
+    {
+        return (state.join(STORE_FILE_NAME), StoreOrigin::StateDirectory);
+    }
+    let system = Path::new(DEFAULT_STORE_PATH);
+    if system.parent().is_some_and(&writable) {
+        return (system.to_path_buf(), StoreOrigin::System);
+    }
+    let user = absolute("XDG_STATE_HOME")
+        .or_else(|| absolute("HOME").map(|home| home.join(".local").join("state")));
+    if let Some(base) = user {
+        return (base.join("tamis").join(STORE_FILE_NAME), StoreOrigin::User);
+    }
+    (system.to_path_buf(), StoreOrigin::Fallback)
+}
+
+/// Whether `folder` is a folder this process may create files in.
+fn writable_folder(folder: &Path) -> bool {
+    use rustix::fs::Access;
+    folder.is_dir() && rustix::fs::access(folder, Access::WRITE_OK | Access::EXEC_OK).is_ok()
+}
+
 /// The store (`src/store/`): held mail, the verdict journal and reports, in one SQLite
 /// file.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields, default)]
 pub struct StoreConfig {
+    /// Whether the daemon keeps a store at all. Default on. Off, nothing is journalled or
+    /// held, and the policy must be tag-only everywhere (a quarantine would have nowhere
+    /// to keep the message).
+    pub enabled: bool,
     /// The store file; relative paths are resolved against the config file's folder.
-    /// Default `/var/lib/tamis/store.sqlite`. Created with mode 0600 if missing; its
-    /// folder must exist.
+    /// Default: see [`default_store_path`] (`$STATE_DIRECTORY`, `/var/lib/tamis`, then the
+    /// user's state folder). Created with mode 0600 if missing; its folder must exist,
+    /// except the user's state folder, which the daemon creates.
     pub path: PathBuf,
     /// Days a held message is kept before it is purged; 1 to 36 500. Default 30.
     #[serde(deserialize_with = "positive_u32")]
@@ -650,7 +743,8 @@ pub struct StoreConfig {
 impl Default for StoreConfig {
     fn default() -> StoreConfig {
         StoreConfig {
-            path: PathBuf::from(DEFAULT_STORE_PATH),
+            enabled: true,
+            path: default_store_path().0,
             quarantine_days: 30,
             journal_days: 90,
             record_subject: false,
@@ -895,6 +989,16 @@ pub enum FailureMode {
     Accept,
     /// Ask the relay to answer with a temporary failure: the sender retries later.
     Defer,
+}
+
+impl FailureMode {
+    /// The mode as the configuration writes it.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            FailureMode::Accept => "accept",
+            FailureMode::Defer => "defer",
+        }
+    }
 }
 
 /// Log output.
@@ -1464,7 +1568,8 @@ mod tests {
     fn store_section_defaults_resolves_and_checks() {
         let c = Config::from_toml_str("", "/etc/tamis/tamis.toml").unwrap_or_default();
         assert_eq!(c.store, StoreConfig::default());
-        assert_eq!(c.store.path, PathBuf::from(DEFAULT_STORE_PATH));
+        assert_eq!(c.store.path, default_store_path().0);
+        assert!(c.store.enabled);
         assert!(!c.store.record_subject);
         let c = Config::from_toml_str(
             "[store]\npath = \"state/store.sqlite\"\nquarantine_days = 7\nrecord_subject = true\n",
@@ -1485,6 +1590,10 @@ mod tests {
             ("[store]\njournal_days = 40000\n", "36500"),
             ("[store]\npath = \"\"\n", "store.path is empty"),
             ("[store]\nkeep = 3\n", "unknown field"),
+            (
+                "[store]\nenabled = false\n[policy]\ntag_only = false\n",
+                "a quarantined message must be kept",
+            ),
         ] {
             let e = Config::from_toml_str(bad, "t.toml").map(drop).err();
             let text = e.map(|e| e.to_string()).unwrap_or_default();
@@ -1531,6 +1640,54 @@ mod tests {
             let text = e.map(|e| e.to_string()).unwrap_or_default();
             assert!(text.contains(needle), "{bad:?} gave {text:?}");
         }
+    }
+
+    #[test]
+    fn the_default_store_location_follows_the_environment() {
+        use std::ffi::OsString;
+        let env = |pairs: &'static [(&'static str, &'static str)]| {
+            move |name: &str| {
+                pairs
+                    .iter()
+                    .find(|(k, _)| *k == name)
+                    .map(|(_, v)| OsString::from(v))
+            }
+        };
+        let nothing_writable = |_: &Path| false;
+        let all = env(&[
+            ("STATE_DIRECTORY", "/var/lib/tamis-unit:/var/lib/other"),
+            ("XDG_STATE_HOME", "/home/u/.state"),
+            ("HOME", "/home/u"),
+        ]);
+        assert_eq!(
+            default_store_path_from(all, |_| true),
+            (
+                PathBuf::from("/var/lib/tamis-unit/store.sqlite"),
+                StoreOrigin::StateDirectory
+            )
+        );
+        let user = env(&[("XDG_STATE_HOME", "/home/u/.state"), ("HOME", "/home/u")]);
+        assert_eq!(
+            default_store_path_from(user, |p| p == Path::new("/var/lib/tamis")),
+            (PathBuf::from(DEFAULT_STORE_PATH), StoreOrigin::System)
+        );
+        assert_eq!(
+            default_store_path_from(user, nothing_writable),
+            (
+                PathBuf::from("/home/u/.state/tamis/store.sqlite"),
+                StoreOrigin::User
+            )
+        );
+        // A relative XDG_STATE_HOME is to be ignored (XDG Base Directory Specification).
+        let home = env(&[("XDG_STATE_HOME", "rel"), ("HOME", "/home/u")]);
+        assert_eq!(
+            default_store_path_from(home, nothing_writable).0,
+            PathBuf::from("/home/u/.local/state/tamis/store.sqlite")
+        );
+        assert_eq!(
+            default_store_path_from(env(&[]), nothing_writable),
+            (PathBuf::from(DEFAULT_STORE_PATH), StoreOrigin::Fallback)
+        );
     }
 
     #[test]

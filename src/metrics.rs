@@ -17,6 +17,24 @@
 //! | `tamis_accept_errors_total` | counter | |
 //! | `tamis_buffered_bytes` | gauge | |
 //! | `tamis_buffer_budget_exhausted_total` | counter | |
+//! | `tamis_would_quarantine_total` | counter | `domain`, `why` |
+//! | `tamis_quarantine_not_held_total` | counter | `reason` |
+//! | `tamis_holds_total` | counter | `outcome` |
+//! | `tamis_hold_duration_seconds` | histogram | |
+//! | `tamis_held_messages` | gauge | |
+//! | `tamis_held_bytes` | gauge | |
+//! | `tamis_held_stored_bytes` | gauge | |
+//! | `tamis_store_errors_total` | counter | `kind` |
+//! | `tamis_journal_entries_lost_total` | counter | |
+//! | `tamis_reports_total` | counter | `domain`, `kind`, `source`, `enforced` |
+//! | `tamis_releases_total` | counter | `domain` |
+//! | `tamis_reports_unmatched_total` | counter | `status` |
+//! | `tamis_purged_total` | counter | `what` |
+//!
+//! The held-mail gauges and the report counters come from the store, which other
+//! processes write too (the operator commands record reports and releases): the daemon
+//! reads them periodically (`crate::server::keeping`). The report counters count what was
+//! recorded while this daemon ran, from the newest report it found at start.
 //!
 //! Invariant: every label takes values from a bounded set. Each distinct label value is
 //! a separate time series that the Prometheus server keeps in memory and on disk for as
@@ -78,6 +96,55 @@ pub const SCAN_SECONDS_BUCKETS: [f64; 15] = [
     1.0, 2.5,
 ];
 
+/// The `kind` values of `tamis_store_errors_total` beyond [`crate::store::StoreError::kind`]:
+/// a journal entry refused because the writer's queue was full, or because the writer had
+/// stopped.
+pub const JOURNAL_REFUSALS: [&str; 2] = ["queue-full", "stopped"];
+
+/// Every `kind` of [`crate::store::StoreError::kind`], for pre-registering series.
+pub const STORE_ERROR_KINDS: [&str; 13] = [
+    "missing-folder",
+    "not-a-file",
+    "read-only",
+    "not-a-store",
+    "corrupt",
+    "newer-schema",
+    "busy",
+    "full",
+    "io",
+    "gone",
+    "damaged-record",
+    "invalid",
+    "sqlite",
+];
+
+/// The `why` values of `tamis_would_quarantine_total`.
+pub const WOULD_QUARANTINE_WHY: [&str; 2] = ["tag-only", "not-held"];
+
+/// The `reason` values of `tamis_quarantine_not_held_total`.
+pub const NOT_HELD_REASONS: [&str; 5] = [
+    "store-error",
+    "over-max-message",
+    "over-buffer-budget",
+    "field-cut",
+    "fields-dropped",
+];
+
+/// The `kind` values of `tamis_reports_total`, the `source` values, and the `status`
+/// values of `tamis_reports_unmatched_total`, as the store names them.
+pub const REPORT_KINDS: [&str; 2] = ["junk", "not-junk"];
+/// See [`REPORT_KINDS`].
+pub const REPORT_SOURCES: [&str; 4] = ["user", "operator", "audit", "release"];
+/// See [`REPORT_KINDS`].
+pub const UNMATCHED_STATUSES: [&str; 3] =
+    ["unknown-verdict", "domain-mismatch", "no-reporter-domain"];
+
+/// Bucket bounds of `tamis_hold_duration_seconds`: 0.5 ms to 10 s; a hold waits for a
+/// flush to disk, and for the busy timeout when another process holds the store.
+pub const HOLD_SECONDS_BUCKETS: [f64; 12] = [
+    0.000_5, 0.001, 0.002_5, 0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 1.0, 5.0, 10.0,
+];
+
 /// Outcome of a configuration or model reload.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum ReloadOutcome {
@@ -126,6 +193,19 @@ pub struct Metrics {
     accept_errors: IntCounter,
     buffered_bytes: IntGauge,
     budget_exhausted: IntCounter,
+    would_quarantine: IntCounterVec,
+    not_held: IntCounterVec,
+    holds: IntCounterVec,
+    hold_seconds: Histogram,
+    held_messages: IntGauge,
+    held_bytes: IntGauge,
+    held_stored_bytes: IntGauge,
+    store_errors: IntCounterVec,
+    journal_lost: IntCounter,
+    reports: IntCounterVec,
+    releases: IntCounterVec,
+    unmatched: IntCounterVec,
+    purged: IntCounterVec,
 }
 
 /// Keeps `tamis_connections_open` one higher while it lives.
@@ -267,6 +347,137 @@ impl Metrics {
                 "Messages decided on part of their content because the buffer budget was spent.",
             ),
         )?;
+        let would_quarantine = register(
+            &registry,
+            "tamis_would_quarantine_total",
+            IntCounterVec::new(
+                Opts::new(
+                    "tamis_would_quarantine_total",
+                    "Messages the policy would have quarantined for a recipient domain but did not: tag-only mode tagged them (why=tag-only), or they could not be held (why=not-held, see tamis_quarantine_not_held_total).",
+                ),
+                &["domain", "why"],
+            ),
+        )?;
+        let not_held = register(
+            &registry,
+            "tamis_quarantine_not_held_total",
+            IntCounterVec::new(
+                Opts::new(
+                    "tamis_quarantine_not_held_total",
+                    "Messages to quarantine that were not held, by reason: the store refused them, or the message was not kept whole; their recipients got the failure mode or tag instead.",
+                ),
+                &["reason"],
+            ),
+        )?;
+        let holds = register(
+            &registry,
+            "tamis_holds_total",
+            IntCounterVec::new(
+                Opts::new(
+                    "tamis_holds_total",
+                    "Messages committed to the store before their quarantine verdict (outcome=held), or found already held from an earlier attempt of the relay (outcome=already-held).",
+                ),
+                &["outcome"],
+            ),
+        )?;
+        let hold_seconds = register(
+            &registry,
+            "tamis_hold_duration_seconds",
+            Histogram::with_opts(
+                HistogramOpts::new(
+                    "tamis_hold_duration_seconds",
+                    "Time to commit a held message to the store and flush it to disk, successful or not.",
+                )
+                .buckets(HOLD_SECONDS_BUCKETS.to_vec()),
+            ),
+        )?;
+        let held_messages = register(
+            &registry,
+            "tamis_held_messages",
+            IntGauge::new(
+                "tamis_held_messages",
+                "Messages held in the store, waiting for a decision.",
+            ),
+        )?;
+        let held_bytes = register(
+            &registry,
+            "tamis_held_bytes",
+            IntGauge::new(
+                "tamis_held_bytes",
+                "Size of the messages held in the store, as received.",
+            ),
+        )?;
+        let held_stored_bytes = register(
+            &registry,
+            "tamis_held_stored_bytes",
+            IntGauge::new(
+                "tamis_held_stored_bytes",
+                "Size of the messages held in the store, compressed as stored.",
+            ),
+        )?;
+        let store_errors = register(
+            &registry,
+            "tamis_store_errors_total",
+            IntCounterVec::new(
+                Opts::new(
+                    "tamis_store_errors_total",
+                    "Store operations that failed, by kind of error (and journal entries refused by a full or stopped journal writer).",
+                ),
+                &["kind"],
+            ),
+        )?;
+        let journal_lost = register(
+            &registry,
+            "tamis_journal_entries_lost_total",
+            IntCounter::new(
+                "tamis_journal_entries_lost_total",
+                "Verdicts whose journal entry could not be written; the figures miss them.",
+            ),
+        )?;
+        let reports = register(
+            &registry,
+            "tamis_reports_total",
+            IntCounterVec::new(
+                Opts::new(
+                    "tamis_reports_total",
+                    "Reports matched to a verdict, recorded while this daemon ran, by recipient domain, what they say (junk, not-junk), who made them (user, operator, audit, release) and the action the policy took or, in tag-only mode, would have taken for the domain (enforced). A release counts as a not-junk report.",
+                ),
+                &["domain", "kind", "source", "enforced"],
+            ),
+        )?;
+        let releases = register(
+            &registry,
+            "tamis_releases_total",
+            IntCounterVec::new(
+                Opts::new(
+                    "tamis_releases_total",
+                    "Held messages released while this daemon ran, by recipient domain they were held for.",
+                ),
+                &["domain"],
+            ),
+        )?;
+        let unmatched = register(
+            &registry,
+            "tamis_reports_unmatched_total",
+            IntCounterVec::new(
+                Opts::new(
+                    "tamis_reports_unmatched_total",
+                    "Reports recorded while this daemon ran that count as no evidence, by why.",
+                ),
+                &["status"],
+            ),
+        )?;
+        let purged = register(
+            &registry,
+            "tamis_purged_total",
+            IntCounterVec::new(
+                Opts::new(
+                    "tamis_purged_total",
+                    "Records removed by retention: held messages past their expiry, journal entries and reports past the journal retention.",
+                ),
+                &["what"],
+            ),
+        )?;
         let metrics = Metrics {
             registry,
             domains: RwLock::new(BTreeSet::new()),
@@ -282,8 +493,36 @@ impl Metrics {
             accept_errors,
             buffered_bytes,
             budget_exhausted,
+            would_quarantine,
+            not_held,
+            holds,
+            hold_seconds,
+            held_messages,
+            held_bytes,
+            held_stored_bytes,
+            store_errors,
+            journal_lost,
+            reports,
+            releases,
+            unmatched,
+            purged,
         };
         metrics.set_domains(domains);
+        for reason in NOT_HELD_REASONS {
+            let _ = labelled(&metrics.not_held, &[reason]);
+        }
+        for outcome in ["held", "already-held"] {
+            let _ = labelled(&metrics.holds, &[outcome]);
+        }
+        for kind in STORE_ERROR_KINDS.iter().chain(JOURNAL_REFUSALS.iter()) {
+            let _ = labelled(&metrics.store_errors, &[kind]);
+        }
+        for status in UNMATCHED_STATUSES {
+            let _ = labelled(&metrics.unmatched, &[status]);
+        }
+        for what in ["held", "journal", "reports"] {
+            let _ = labelled(&metrics.purged, &[what]);
+        }
         for kind in PROTOCOL_ERROR_KINDS.iter().chain([&OTHER]) {
             let _ = labelled(&metrics.protocol_errors, &[kind]);
         }
@@ -315,6 +554,17 @@ impl Metrics {
                 let _ = labelled(&self.messages, &[label, action.as_str()]);
             }
             let _ = labelled(&self.margin, &[label]);
+            for why in WOULD_QUARANTINE_WHY {
+                let _ = labelled(&self.would_quarantine, &[label, why]);
+            }
+            let _ = labelled(&self.releases, &[label]);
+            for kind in REPORT_KINDS {
+                for source in REPORT_SOURCES {
+                    for enforced in Action::ALL {
+                        let _ = labelled(&self.reports, &[label, kind, source, enforced.as_str()]);
+                    }
+                }
+            }
         }
         match self.domains.write() {
             Ok(mut guard) => *guard = set,
@@ -385,6 +635,151 @@ impl Metrics {
             }
         }
         self.record_scan(seconds, bytes);
+    }
+
+    /// Records one message as [`Metrics::record_decisions`] does, from decisions that
+    /// also carry the action with tag-only off: each distinct domain label where the
+    /// policy would have quarantined but the action sent is something else is counted in
+    /// `tamis_would_quarantine_total`, with `why` tag-only when the action is tag and the
+    /// message was not refused a hold, else not-held.
+    pub fn record_outcomes(
+        &self,
+        decisions: &[crate::policy::Decision],
+        not_held: bool,
+        margin: f64,
+        seconds: f64,
+        bytes: u64,
+    ) {
+        let pairs: Vec<(String, Action)> = decisions
+            .iter()
+            .map(|d| (d.recipient.clone(), d.action))
+            .collect();
+        self.record_decisions(&pairs, margin, seconds, bytes);
+        let mut would = BTreeSet::new();
+        for d in decisions {
+            if d.enforced == Action::Quarantine && d.action != Action::Quarantine {
+                let domain = domain::recipient_domain(&d.recipient).unwrap_or_default();
+                would.insert(self.domain_label(&domain));
+            }
+        }
+        let why = if not_held { "not-held" } else { "tag-only" };
+        for label in would {
+            if let Some(c) = labelled(&self.would_quarantine, &[&label, why]) {
+                c.inc();
+            }
+        }
+    }
+
+    /// Counts a message that should have been quarantined but was not held; `reason` is
+    /// one of [`NOT_HELD_REASONS`] (anything else is not counted).
+    pub fn not_held(&self, reason: &str) {
+        if NOT_HELD_REASONS.contains(&reason)
+            && let Some(c) = labelled(&self.not_held, &[reason])
+        {
+            c.inc();
+        }
+    }
+
+    /// Counts a hold and its time: `true` when the message was newly held, `false` when it
+    /// was found already held.
+    pub fn hold(&self, newly: bool, seconds: f64) {
+        let outcome = if newly { "held" } else { "already-held" };
+        if let Some(c) = labelled(&self.holds, &[outcome]) {
+            c.inc();
+        }
+        self.hold_seconds(seconds);
+    }
+
+    /// Observes the time of a hold that failed.
+    pub fn hold_seconds(&self, seconds: f64) {
+        if seconds.is_finite() && seconds >= 0.0 {
+            self.hold_seconds.observe(seconds);
+        }
+    }
+
+    /// Sets the held-mail gauges from the store's totals.
+    pub fn set_held(&self, totals: &crate::store::HeldTotals) {
+        let gauge = |g: &IntGauge, v: u64| g.set(i64::try_from(v).unwrap_or(i64::MAX));
+        gauge(&self.held_messages, totals.messages);
+        gauge(&self.held_bytes, totals.bytes);
+        gauge(&self.held_stored_bytes, totals.stored_bytes);
+    }
+
+    /// Adds one newly held message to the held-mail gauges, until the next refresh from
+    /// the store sets them.
+    pub fn add_held(&self, bytes: u64, stored_bytes: u64) {
+        self.held_messages.inc();
+        self.held_bytes
+            .add(i64::try_from(bytes).unwrap_or(i64::MAX));
+        self.held_stored_bytes
+            .add(i64::try_from(stored_bytes).unwrap_or(i64::MAX));
+    }
+
+    /// The held-mail gauges: messages, bytes and stored bytes.
+    pub fn held(&self) -> (i64, i64, i64) {
+        (
+            self.held_messages.get(),
+            self.held_bytes.get(),
+            self.held_stored_bytes.get(),
+        )
+    }
+
+    /// Counts a store error of this kind ([`crate::store::StoreError::kind`] or one of
+    /// [`JOURNAL_REFUSALS`]); an unknown kind counts as `sqlite`.
+    pub fn store_error(&self, kind: &str) {
+        let known = STORE_ERROR_KINDS
+            .iter()
+            .chain(JOURNAL_REFUSALS.iter())
+            .find(|k| **k == kind)
+            .copied()
+            .unwrap_or("sqlite");
+        if let Some(c) = labelled(&self.store_errors, &[known]) {
+            c.inc();
+        }
+    }
+
+    /// Counts journal entries that could not be written.
+    pub fn journal_lost(&self, entries: u64) {
+        self.journal_lost.inc_by(entries);
+    }
+
+    /// Counts one matched report for one recipient domain. `kind`, `source` and
+    /// `enforced` must come from [`REPORT_KINDS`], [`REPORT_SOURCES`] and the actions;
+    /// anything else is not counted.
+    pub fn report(&self, domain: &str, kind: &str, source: &str, enforced: Action) {
+        if !REPORT_KINDS.contains(&kind) || !REPORT_SOURCES.contains(&source) {
+            return;
+        }
+        let label = self.domain_label(domain);
+        if let Some(c) = labelled(&self.reports, &[&label, kind, source, enforced.as_str()]) {
+            c.inc();
+        }
+    }
+
+    /// Counts a release of a message held for a recipient domain.
+    pub fn release(&self, domain: &str) {
+        let label = self.domain_label(domain);
+        if let Some(c) = labelled(&self.releases, &[&label]) {
+            c.inc();
+        }
+    }
+
+    /// Counts a report that is no evidence; `status` is one of [`UNMATCHED_STATUSES`].
+    pub fn unmatched_report(&self, status: &str) {
+        if UNMATCHED_STATUSES.contains(&status)
+            && let Some(c) = labelled(&self.unmatched, &[status])
+        {
+            c.inc();
+        }
+    }
+
+    /// Counts records removed by retention: `what` is `held`, `journal` or `reports`.
+    pub fn purged(&self, what: &str, n: u64) {
+        if ["held", "journal", "reports"].contains(&what)
+            && let Some(c) = labelled(&self.purged, &[what])
+        {
+            c.inc_by(n);
+        }
     }
 
     fn record_scan(&self, seconds: f64, bytes: u64) {

@@ -543,6 +543,13 @@ class Verdict:
     def scored(self) -> bool:
         return not math.isnan(self.margin)
 
+    @property
+    def held(self) -> list[str]:
+        """Recipients (as sent) whose copy tamis holds: action quarantine.
+        §4.5: the server wrote the message to its store before this VERDICT, so
+        the relay does not deliver it to them and keeps no copy of its own."""
+        return [r for r, a in self.actions.items() if a == "quarantine"]
+
     @classmethod
     def from_frame(cls, frame: Frame) -> "Verdict":
         f = frame.fields

@@ -729,6 +729,47 @@ class VectorConversationTests(unittest.TestCase):
         self.assertTrue(cm.exception.message_open)
         srv.finish(self)
 
+    def test_vec_message_quarantine(self):
+        # vectors/message_quarantine.txt, §4.5: no ENOUGH while a recipient may
+        # be quarantined, so every chunk is sent; the message sent again after a
+        # lost verdict gets the first verdict id.
+        srv = VectorServer("message_quarantine.txt")
+        c = srv.client()
+        c.hello()
+        msg = (b"From: Prize Desk <win@promo.example>\r\n"
+               b"Subject: You have won\r\n"
+               b"Message-ID: <p-77@promo.example>\r\n"
+               b"\r\n"
+               b"Claim your prize today.\r\nSend your bank details.\r\n")
+        v1 = c.scan("alice@example.org", ["dan@example.net"], msg, chunk_size=25)
+        v2 = c.scan("alice@example.org", ["dan@example.net"], msg, chunk_size=25)
+        srv.finish(self)
+        self.assertEqual(v1.actions, {"dan@example.net": "quarantine"})
+        self.assertEqual(v1.held, ["dan@example.net"])
+        self.assertEqual(v1.edits, [])
+        self.assertFalse(v1.body_cut_short)
+        self.assertEqual(v2.verdict_id, v1.verdict_id)
+        self.assertEqual(v2.held, ["dan@example.net"])
+        c.close()
+
+    def test_vec_message_not_held(self):
+        # vectors/message_not_held.txt, §4.5: a message past max_message is not
+        # kept whole, so it is tagged instead of quarantined, and says why.
+        srv = VectorServer("message_not_held.txt")
+        c = srv.client()
+        c.hello()
+        self.assertEqual(c.server_max_message, 64)
+        v = c.scan("alice@example.org", ["dan@example.net"],
+                   b"Subject: You have won a prize\r\n\r\n"
+                   b"Claim your prize today.\r\nSend your bank details.\r\n",
+                   chunk_size=25)
+        srv.finish(self)
+        self.assertEqual([f[1] for f in v.faults], ["MESSAGE_TOO_LARGE"])
+        self.assertEqual(v.actions, {"dan@example.net": "tag"})
+        self.assertEqual(v.held, [])
+        self.assertTrue(any(r.startswith("not held: ") for r in v.reasons), v.reasons)
+        c.close()
+
     def test_vec_fault_shutting_down(self):
         # vectors/fault_shutting_down.txt: SENDER refused (§8); the open
         # message is reported as not scanned (§5).

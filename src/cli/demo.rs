@@ -85,6 +85,8 @@ pub fn run(args: &DemoArgs) -> anyhow::Result<u8> {
     config.listen.tcp = Some("127.0.0.1:0".parse()?);
     config.metrics = Some("127.0.0.1:0".parse()?);
     config.policy = policy.clone();
+    // The demo's verdicts and held mail stay in its own folder, never in the operator's store.
+    config.store.path = dir.join("store.sqlite");
     let decisions = Decisions {
         policy,
         headers: config.headers.clone(),

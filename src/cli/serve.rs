@@ -16,11 +16,12 @@ use tokio::sync::Notify;
 use tokio::task::JoinHandle;
 
 use super::input::BadInput;
-use crate::config::{Config, LogFormat};
+use crate::config::{Config, LogFormat, default_store_path};
 use crate::metrics::{Metrics, ReloadOutcome};
 use crate::server::build::{build_engine, describe_model};
 use crate::server::engine::SharedEngine;
-use crate::server::listen::start;
+use crate::server::keeping::{Keeping, KeepingSettings, open_store};
+use crate::server::listen::start_with;
 
 /// Arguments of `tamis serve`.
 #[derive(clap::Args, Debug)]
@@ -79,6 +80,47 @@ fn raise_descriptor_limit() {
     }
 }
 
+/// Opens the store before anything is bound and says where it is; a store that cannot
+/// be opened stops the start with an error naming its path.
+fn open_keeping(config: &Config, metrics: &Arc<Metrics>) -> anyhow::Result<Option<Arc<Keeping>>> {
+    if !config.store.enabled {
+        eprintln!(
+            "tamis: no store (store.enabled = false): verdicts are not journalled and nothing can be held"
+        );
+        return Ok(None);
+    }
+    let path = &config.store.path;
+    let (default, origin) = default_store_path();
+    let from = if *path == default {
+        origin.describe()
+    } else {
+        "configured in [store] path"
+    };
+    let store = open_keeping_store(config)?;
+    eprintln!(
+        "tamis: store {} ({from}): held mail, verdict journal, reports",
+        path.display()
+    );
+    let keeping = Keeping::start(
+        Arc::new(store),
+        Arc::clone(metrics),
+        KeepingSettings::default(),
+        config.store.record_subject,
+    )?;
+    Ok(Some(keeping))
+}
+
+fn open_keeping_store(config: &Config) -> anyhow::Result<crate::store::SqliteStore> {
+    open_store(&config.store).map_err(|e| {
+        let hint = if config.store.path == default_store_path().0 {
+            " (no [store] path is configured: set one in a configuration file to put the store elsewhere)"
+        } else {
+            ""
+        };
+        anyhow::anyhow!("{e}{hint}")
+    })
+}
+
 /// Runs `tamis serve` until SIGTERM or SIGINT.
 pub fn run(args: &ServeArgs) -> anyhow::Result<u8> {
     let config = load_config(&args.config)?;
@@ -95,12 +137,13 @@ pub fn run(args: &ServeArgs) -> anyhow::Result<u8> {
     }
     let metrics = Arc::new(Metrics::new(config.policy.domains().keys())?);
     describe_model(&metrics, engine.model());
+    let keeping = open_keeping(&config, &metrics)?;
     let shared = SharedEngine::new(engine);
     let runtime = tokio::runtime::Builder::new_multi_thread()
         .enable_all()
         .build()?;
     let outcome = runtime.block_on(async move {
-        let running = start(&config, shared.clone(), Arc::clone(&metrics)).await?;
+        let running = start_with(&config, shared.clone(), Arc::clone(&metrics), keeping).await?;
         if let Some(addr) = running.tcp {
             eprintln!("tamis: relay protocol on tcp {addr}");
         }

@@ -213,6 +213,12 @@ impl Thresholds {
             Action::Accept
         }
     }
+
+    /// Whether this section can quarantine at all: its own `tag_only`, or the policy-wide
+    /// one when it has none, is off.
+    pub fn may_quarantine(&self, policy_tag_only: bool) -> bool {
+        !self.tag_only.unwrap_or(policy_tag_only)
+    }
 }
 
 impl Default for Thresholds {
@@ -266,6 +272,19 @@ fn ordered(scale: &'static str, tag: f64, quarantine: f64) -> Result<(), PolicyE
             quarantine,
         })
     }
+}
+
+/// What the policy decided for one recipient.
+#[derive(Debug, Clone, PartialEq, Eq)]
+pub struct Decision {
+    /// The recipient as the relay sent it (empty for a refused address).
+    pub recipient: String,
+    /// The action in force.
+    pub action: Action,
+    /// The action with `tag_only` off: [`Action::Quarantine`] where tag-only mode tagged a
+    /// message it would otherwise have held, else equal to `action`. This is what lets
+    /// tag-only mode show what it would have held back.
+    pub enforced: Action,
 }
 
 /// Per-recipient-domain thresholds → actions.
@@ -383,6 +402,55 @@ impl Policy {
         std::iter::once(&self.default)
             .chain(self.domains.values())
             .any(|t| t.scale == Scale::Probability)
+    }
+
+    /// Whether a message to this recipient may be quarantined: its section is not
+    /// tag-only. The daemon keeps the whole message of such a recipient, so that a
+    /// quarantine can hold it (`proto/PROTOCOL.md` §4.5).
+    pub fn may_quarantine(&self, recipient: &str) -> bool {
+        self.thresholds_for(recipient).may_quarantine(self.tag_only)
+    }
+
+    /// Whether any section can quarantine: some section, or the default, is not tag-only.
+    pub fn quarantines_anywhere(&self) -> bool {
+        std::iter::once(&self.default)
+            .chain(self.domains.values())
+            .any(|t| t.may_quarantine(self.tag_only))
+    }
+
+    /// What the policy decides for each recipient, in the order given: the action in
+    /// force and the action it would take with `tag_only` off ([`Decision::enforced`]),
+    /// which differ only where tag-only mode turned a quarantine into a tag.
+    pub fn decide_each(
+        &self,
+        recipients: &[String],
+        margin: f64,
+        probability: Option<f64>,
+    ) -> Vec<Decision> {
+        recipients
+            .iter()
+            .map(|r| {
+                let thresholds = self.thresholds_for(r);
+                Decision {
+                    recipient: r.clone(),
+                    action: thresholds.action(margin, probability, self.tag_only),
+                    enforced: thresholds.action(margin, probability, false),
+                }
+            })
+            .collect()
+    }
+
+    /// The decisions for a message that could not be scanned: accept or defer, as the
+    /// failure mode says, with nothing held back by tag-only mode.
+    pub fn unscanned_each(&self, recipients: &[String], mode: FailureMode) -> Vec<Decision> {
+        self.unscanned(recipients, mode)
+            .into_iter()
+            .map(|(recipient, action)| Decision {
+                recipient,
+                action,
+                enforced: action,
+            })
+            .collect()
     }
 
     /// The action for each recipient, in the order given, each from its own domain's
@@ -768,6 +836,36 @@ mod tests {
             assert!(Thresholds::default().with_target_fpr(Some(bad)).is_err());
             assert!(Policy::default().with_target_fpr(bad).is_err());
         }
+    }
+
+    #[test]
+    fn tag_only_keeps_the_quarantine_it_would_have_made() {
+        let p = policy();
+        let rcpts: Vec<String> = ["a@strict.example.org", "d@elsewhere.test", "e@x.test"]
+            .iter()
+            .map(|s| s.to_string())
+            .collect();
+        let got = p.decide_each(&rcpts, 2.0, Some(0.5));
+        let pairs: Vec<(Action, Action)> = got.iter().map(|d| (d.action, d.enforced)).collect();
+        assert_eq!(
+            pairs,
+            vec![
+                (Action::Quarantine, Action::Quarantine), // own tag_only = false
+                (Action::Tag, Action::Quarantine),        // tag-only: would have held
+                (Action::Tag, Action::Quarantine),
+            ]
+        );
+        let low = p.decide_each(&rcpts[1..2], 0.5, None);
+        assert_eq!((low[0].action, low[0].enforced), (Action::Tag, Action::Tag));
+        assert!(p.may_quarantine("a@strict.example.org"));
+        assert!(!p.may_quarantine("d@elsewhere.test"));
+        assert!(p.quarantines_anywhere());
+        assert!(!Policy::default().quarantines_anywhere());
+        let unscanned = p.unscanned_each(&rcpts[..1], FailureMode::Defer);
+        assert_eq!(
+            (unscanned[0].action, unscanned[0].enforced),
+            (Action::Defer, Action::Defer)
+        );
     }
 
     #[test]

@@ -10,6 +10,7 @@ use crate::analyze::Analyzer;
 use crate::config::{FailureMode, HeaderConfig};
 use crate::features::SpecError;
 use crate::model::LinearModel;
+use crate::model::explain::top_contributions;
 use crate::policy::Policy;
 
 /// The outcome of scoring one message.
@@ -104,6 +105,21 @@ impl Engine {
     /// never refused as "not mail" (see [`Analyzer::vectorize_relayed`]). Blocking: call
     /// from a blocking thread.
     pub fn score(&self, raw: &[u8]) -> Result<Score, ScoreError> {
+        self.score_explained(raw, 0, |_| false)
+            .map(|(score, _)| score)
+    }
+
+    /// Scores one raw message and, when `explain` says so for its score, names the (at
+    /// most) `k` features that pushed its margin most towards junk, strongest first
+    /// (e.g. `body:"claim your"`). Naming features costs about as much as scoring, so
+    /// the caller asks only for verdicts that are not a plain accept. Blocking: call from
+    /// a blocking thread.
+    pub fn score_explained(
+        &self,
+        raw: &[u8],
+        k: usize,
+        explain: impl FnOnce(&Score) -> bool,
+    ) -> Result<(Score, Vec<String>), ScoreError> {
         let pooled = self.analyzers.lock().ok().and_then(|mut pool| pool.pop());
         let mut analyzer = match pooled {
             Some(a) => a,
@@ -117,10 +133,20 @@ impl Engine {
             margin,
             probability: self.model.probability(margin),
         };
+        let reasons = if k > 0 && explain(&score) {
+            top_contributions(&self.model, &mut analyzer, k.saturating_mul(4))
+                .into_iter()
+                .filter(|c| c.contribution > 0.0)
+                .take(k)
+                .map(|c| c.feature)
+                .collect()
+        } else {
+            Vec::new()
+        };
         if let Ok(mut pool) = self.analyzers.lock() {
             pool.push(analyzer);
         }
-        Ok(score)
+        Ok((score, reasons))
     }
 }
 

@@ -6,7 +6,8 @@
 //! `FAULT DENIED`. At most [`MAX_REFUSALS`] refusals are answered at once; further refused
 //! connections are closed without a word, so refusals cannot pile up. Shutdown cancels one token that every
 //! task watches, stops accepting, lets open messages finish and waits for all tasks up to
-//! the grace period.
+//! the grace period, then writes the journal entries still queued. The store is opened
+//! before anything is bound, so a store that cannot be opened stops the start.
 
 use std::net::SocketAddr;
 use std::os::unix::fs::PermissionsExt;
@@ -24,13 +25,13 @@ use super::access::{self, Cidr, PeerCounts, Secret};
 use super::budget::Budget;
 use super::engine::SharedEngine;
 use super::http::{Status, serve_status};
+use super::keeping::{Keeping, KeepingSettings, open_store};
 use super::session::{Context, refuse_after_hello, serve_connection};
 use super::throttle::Throttle;
 use crate::config::Config;
 use crate::metrics::Metrics;
 use crate::proto::FaultCode;
 use crate::status::StatusPage;
-use crate::store::Store;
 
 /// A running daemon: its bound addresses and the means to stop it.
 pub struct Running {
@@ -44,6 +45,7 @@ pub struct Running {
     tracker: TaskTracker,
     grace: Duration,
     budget: Arc<Budget>,
+    keeping: Option<Arc<Keeping>>,
 }
 
 impl Running {
@@ -57,9 +59,16 @@ impl Running {
         self.shutdown.clone()
     }
 
-    /// Stops accepting, lets open messages finish, and waits for every task up to the
-    /// grace period. Returns false when some connection had to be cut.
+    /// The store the daemon keeps, if any.
+    pub fn keeping(&self) -> Option<&Arc<Keeping>> {
+        self.keeping.as_ref()
+    }
+
+    /// Stops accepting, lets open messages finish, waits for every task, and writes the
+    /// journal entries still queued, all within the grace period. Returns false when some
+    /// connection had to be cut or the journal could not be written in time.
     pub async fn stop(self) -> bool {
+        let begun = tokio::time::Instant::now();
         self.shutdown.cancel();
         self.tracker.close();
         let finished = tokio::time::timeout(self.grace, self.tracker.wait())
@@ -68,7 +77,15 @@ impl Running {
         if let Some(path) = &self.unix {
             let _ = std::fs::remove_file(path);
         }
-        finished
+        let journal = match &self.keeping {
+            Some(keeping) => {
+                keeping
+                    .close(self.grace.saturating_sub(begun.elapsed()))
+                    .await
+            }
+            None => true,
+        };
+        finished && journal
     }
 }
 
@@ -93,22 +110,41 @@ impl Status for StatusView {
     }
 }
 
-/// Binds every configured listener and starts serving, without a store (the status page
-/// says so).
+/// Opens the configured store (unless `store.enabled` is off), binds every configured
+/// listener and starts serving. A store that cannot be opened is an error naming its path.
 pub async fn start(
     config: &Config,
     engine: SharedEngine,
     metrics: Arc<Metrics>,
 ) -> std::io::Result<Running> {
-    start_with_store(config, engine, metrics, None).await
+    let keeping = if config.store.enabled {
+        let store_config = config.store.clone();
+        let store = tokio::task::spawn_blocking(move || open_store(&store_config))
+            .await
+            .map_err(std::io::Error::other)?
+            .map_err(|e| std::io::Error::other(e.to_string()))?;
+        let keeping = Keeping::start(
+            Arc::new(store),
+            Arc::clone(&metrics),
+            KeepingSettings::default(),
+            config.store.record_subject,
+        )
+        .map_err(|e| std::io::Error::other(e.to_string()))?;
+        Some(keeping)
+    } else {
+        None
+    };
+    start_with(config, engine, metrics, keeping).await
 }
 
-/// Binds every configured listener and starts serving; the status page reads `store`.
-pub async fn start_with_store(
+/// Binds every configured listener and starts serving, keeping held mail and the
+/// journal in `keeping` (none: nothing is journalled, and a quarantine follows the
+/// failure mode). `config.store` is not looked at.
+pub async fn start_with(
     config: &Config,
     engine: SharedEngine,
     metrics: Arc<Metrics>,
-    store: Option<Arc<dyn Store>>,
+    keeping: Option<Arc<Keeping>>,
 ) -> std::io::Result<Running> {
     let shutdown = CancellationToken::new();
     let tracker = TaskTracker::new();
@@ -121,11 +157,16 @@ pub async fn start_with_store(
         None => None,
     };
     let page = Arc::new(
-        StatusPage::new(&config.status, engine.clone(), store)
-            .map_err(|e| std::io::Error::other(e.to_string()))?,
+        StatusPage::new(
+            &config.status,
+            engine.clone(),
+            keeping.as_ref().map(|k| Arc::clone(k.store())),
+        )
+        .map_err(|e| std::io::Error::other(e.to_string()))?,
     );
     let base = Context {
         shutdown: shutdown.clone(),
+        keeping: keeping.clone(),
         ..Context::new(engine.clone(), Arc::clone(&metrics), limits.clone())
     };
     let permits = Arc::new(Semaphore::new(limits.max_connections as usize));
@@ -139,6 +180,7 @@ pub async fn start_with_store(
         tracker: tracker.clone(),
         grace: limits.grace_period,
         budget: Arc::clone(&base.budget),
+        keeping: keeping.clone(),
     };
     if let Some(addr) = config.listen.tcp {
         let listener = TcpListener::bind(addr).await?;
@@ -181,6 +223,10 @@ pub async fn start_with_store(
             page,
         });
         tracker.spawn(serve_status(listener, view, shutdown.clone()));
+    }
+    // Started last: a failed bind above leaves no task behind.
+    if let Some(keeping) = &keeping {
+        tracker.spawn(Arc::clone(keeping).maintain(shutdown.clone()));
     }
     Ok(running)
 }

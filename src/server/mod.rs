@@ -6,6 +6,7 @@ pub mod budget;
 pub mod build;
 pub mod engine;
 pub mod http;
+pub mod keeping;
 pub mod listen;
 pub mod session;
 pub mod throttle;

@@ -3,13 +3,17 @@
 //! Invariants: one read buffer per connection, advanced only past whole frames, and given
 //! back between messages after a large frame; a declared frame length is checked against
 //! the limit before its payload is waited for; the message being assembled never grows past
-//! the scan limit nor past what the daemon-wide buffer budget lends (bytes beyond are read
-//! and dropped, the message is still scored); one `FIELD` is one header line in it; a
-//! `VERDICT` always fits the client's `max_frame`; `HELLO` must come within the handshake
-//! timeout and `PING` alone never restarts the idle timeout; scoring runs on a blocking
-//! thread with the engine the message started with; every value from the peer is escaped
-//! before it is logged. Every error in a session ends in that session (logged and
-//! counted), never in the listener.
+//! its cap nor past what the daemon-wide buffer budget lends (bytes beyond are read and
+//! dropped, the message is still scored); its cap is the whole message (up to
+//! `max_message`) when a recipient may be quarantined, else the scan limit, and `ENOUGH` is
+//! sent only in the second case (PROTOCOL.md §4.5); a message not kept whole is marked so
+//! and never held; one `FIELD` is one header line in it; a `VERDICT` always fits the
+//! client's `max_frame` and is sent only after the store returned from holding the message
+//! (`super::keeping`); `HELLO` must come within the handshake timeout and `PING` alone
+//! never restarts the idle timeout; scoring and holding run on a blocking thread with the
+//! engine the message started with; every value from the peer is escaped before it is
+//! logged. Every error in a session ends in that session (logged and counted), never in
+//! the listener.
 
 use std::sync::Arc;
 use std::time::Duration;
@@ -21,17 +25,21 @@ use tokio_util::sync::CancellationToken;
 
 use super::access::Secret;
 use super::budget::{Budget, Buffer, MESSAGE_FLOOR};
-use super::engine::{Engine, SharedEngine};
+use super::engine::{Engine, Score, SharedEngine};
+use super::keeping::{
+    Decided, HeldAs, Keeping, NotWhole, REASONS_KEPT, Settled, settle_without_store,
+};
 use super::throttle::Throttle;
 use crate::config::Limits as ConfigLimits;
 use crate::logsafe::safe;
 use crate::metrics::Metrics;
-use crate::policy::{self, Action, HeaderEdit, UnscannedReason};
+use crate::policy::{self, Action, Decision, HeaderEdit, UnscannedReason};
 use crate::proto::address::{self, Role};
 use crate::proto::{
     Edit, EditOp, FaultCode, Frame, Keep, Limits, MIN_MAX_FRAME, Phase, RecipientAction,
     SessionState, Verdict, encode_frame_within, parse_frame,
 };
+use crate::store::MessageKey;
 
 /// Everything a session needs from the daemon.
 #[derive(Clone)]
@@ -54,6 +62,8 @@ pub struct Context {
     pub refused_log: Arc<Throttle>,
     /// A spent buffer budget is logged at most once a second.
     pub budget_log: Arc<Throttle>,
+    /// The store: held mail and the verdict journal; `None` when the daemon keeps none.
+    pub keeping: Option<Arc<Keeping>>,
 }
 
 impl Context {
@@ -70,6 +80,7 @@ impl Context {
             secret: None,
             refused_log: Arc::new(Throttle::new(Duration::from_secs(1))),
             budget_log: Arc::new(Throttle::new(Duration::from_secs(1))),
+            keeping: None,
         }
     }
 
@@ -170,14 +181,28 @@ struct Message {
     /// The engine in force when the message started; it scores the message even if a
     /// reload swaps the shared one meanwhile.
     engine: Option<Arc<Engine>>,
-    /// Most bytes kept: the engine's raw scan limit, never more than the message limit.
+    /// Most bytes kept: the whole message when it may be held, else the engine's raw scan
+    /// limit, never more than the message limit.
     cap: usize,
+    /// The envelope sender as sent (empty for the null sender or a refused one).
+    sender: String,
     recipients: Vec<String>,
-    /// The message as assembled for scoring, paid from the daemon's buffer budget; `None`
-    /// between messages.
+    /// The message as assembled for scoring (and holding), paid from the daemon's buffer
+    /// budget; `None` until its content starts, and between messages.
     raw: Option<Buffer>,
     body_started: bool,
     enough_sent: bool,
+    /// Whether the whole message is kept because a recipient may be quarantined
+    /// (PROTOCOL.md §4.5): then no `ENOUGH` is sent.
+    keep_whole: bool,
+    /// The first reason the message was not kept whole, if any.
+    not_whole: Option<NotWhole>,
+    /// Bytes of field names, values and chunks the relay sent, kept or not.
+    sent: u64,
+    /// The hash of the first Message-ID field.
+    message_key: Option<MessageKey>,
+    /// The first Subject field, when the store records subjects.
+    subject: Option<String>,
 }
 
 enum Flow {
@@ -352,16 +377,14 @@ where
                 }
             }
             Frame::Peer { .. } => {}
-            Frame::Sender { .. } => {
-                let engine = self.ctx.engine.current();
-                let cap = (engine.model().spec().limits.max_raw_bytes as u64)
-                    .min(self.ctx.limits.max_message_bytes) as usize;
-                // Room for the separators around the header section beyond the scan cap.
-                let raw = Buffer::new(&self.ctx.budget, cap.saturating_add(4), MESSAGE_FLOOR);
+            Frame::Sender { address } => {
+                let sender = match accepted.keep {
+                    Keep::All | Keep::Prefix(_) => address,
+                    Keep::Nothing | Keep::Blank => String::new(),
+                };
                 self.message = Message {
-                    engine: Some(engine),
-                    cap,
-                    raw: Some(raw),
+                    engine: Some(self.ctx.engine.current()),
+                    sender,
                     ..Message::default()
                 };
             }
@@ -373,28 +396,48 @@ where
                 Keep::All | Keep::Prefix(_) => self.message.recipients.push(address),
             },
             Frame::Field { name, value } => {
+                self.start_content();
+                self.note_cuts(&accepted.notices);
+                self.message.sent = self
+                    .message
+                    .sent
+                    .saturating_add((name.len() + value.len()) as u64);
                 let n = keep(&value);
                 if n > 0 || matches!(accepted.keep, Keep::All) {
                     let room = self.scan_room();
                     let value = value.get(..n).unwrap_or(&value);
+                    self.note_field(&name, value);
                     let mut line = Vec::new();
                     append_field(&mut line, &name, value, room);
+                    if line.len() < name.len() + value.len() + 4 {
+                        self.cut(NotWhole::OverMaxMessage);
+                    }
                     self.append(&line).await?;
                 }
             }
             Frame::Chunk { data } => {
+                self.start_content();
+                self.note_cuts(&accepted.notices);
+                self.message.sent = self.message.sent.saturating_add(data.len() as u64);
                 if !self.message.body_started {
                     self.append(b"\r\n").await?;
                     self.message.body_started = true;
                 }
-                let n = keep(&data).min(self.scan_room());
+                let kept = keep(&data);
+                let n = kept.min(self.scan_room());
+                if n < kept {
+                    self.cut(NotWhole::OverMaxMessage);
+                }
                 self.append(&data[..n]).await?;
-                if !self.message.enough_sent && self.scan_room() == 0 {
+                // ENOUGH only when nothing of the message may be held (PROTOCOL.md §4.5):
+                // a message that may be quarantined is kept whole.
+                if !self.message.keep_whole && !self.message.enough_sent && self.scan_room() == 0 {
                     self.message.enough_sent = true;
                     self.send(&Frame::Enough).await?;
                 }
             }
             Frame::Seal => {
+                self.start_content();
                 if !self.message.body_started {
                     self.append(b"\r\n").await?;
                 }
@@ -435,7 +478,7 @@ where
     fn notice_text(&self, code: FaultCode, frame: &Frame) -> String {
         match (code, frame) {
             (FaultCode::MessageTooLarge, _) => {
-                "message larger than the scan limit; the rest is not read".to_string()
+                "message larger than max_message; the rest is not read".to_string()
             }
             (FaultCode::TooMany, _) => {
                 "too many recipients or fields; the extra ones are ignored".to_string()
@@ -464,6 +507,80 @@ where
         }
     }
 
+    /// Sets the message up for its content, once its recipients are known (at its first
+    /// `FIELD`, `CHUNK` or `SEAL`): the whole message is kept when a recipient may be
+    /// quarantined and the daemon has a store to hold it in; otherwise only what the
+    /// engine scans.
+    fn start_content(&mut self) {
+        if self.message.raw.is_some() {
+            return;
+        }
+        let engine = match &self.message.engine {
+            Some(engine) => Arc::clone(engine),
+            None => self.ctx.engine.current(),
+        };
+        let policy = &engine.decisions().policy;
+        let keep_whole = self.ctx.keeping.is_some()
+            && self
+                .message
+                .recipients
+                .iter()
+                .any(|r| policy.may_quarantine(r));
+        let limits = &self.ctx.limits;
+        let cap = if keep_whole {
+            // Every content byte the relay may send, with the ": " and CRLF of each field
+            // and the empty line after the header section.
+            limits
+                .max_message_bytes
+                .saturating_add(4u64.saturating_mul(u64::from(limits.max_fields)))
+                .saturating_add(2)
+        } else {
+            (engine.model().spec().limits.max_raw_bytes as u64).min(limits.max_message_bytes)
+        };
+        let cap = usize::try_from(cap).unwrap_or(usize::MAX);
+        // Room for the separators around the header section beyond the cap.
+        let raw = Buffer::new(&self.ctx.budget, cap.saturating_add(4), MESSAGE_FLOOR);
+        self.message.cap = cap;
+        self.message.keep_whole = keep_whole;
+        self.message.raw = Some(raw);
+    }
+
+    /// Records that the message is not kept whole (the first reason counts).
+    fn cut(&mut self, why: NotWhole) {
+        self.message.not_whole.get_or_insert(why);
+    }
+
+    /// Records the cuts the state machine announced for a frame.
+    fn note_cuts(&mut self, notices: &[FaultCode]) {
+        for notice in notices {
+            match notice {
+                FaultCode::MessageTooLarge => self.cut(NotWhole::OverMaxMessage),
+                FaultCode::FieldTooLarge => self.cut(NotWhole::FieldCut),
+                FaultCode::TooMany => self.cut(NotWhole::FieldsDropped),
+                _ => {}
+            }
+        }
+    }
+
+    /// Keeps what the journal needs from a header field: the Message-ID's hash, and the
+    /// Subject when the store records it.
+    fn note_field(&mut self, name: &str, value: &[u8]) {
+        if self.message.message_key.is_none() && name.eq_ignore_ascii_case("Message-ID") {
+            self.message.message_key = MessageKey::of(&String::from_utf8_lossy(value));
+        }
+        if self.message.subject.is_none()
+            && name.eq_ignore_ascii_case("Subject")
+            && self
+                .ctx
+                .keeping
+                .as_ref()
+                .is_some_and(|k| k.records_subject())
+        {
+            let text = String::from_utf8_lossy(value);
+            self.message.subject = Some(text.chars().take(MAX_SUBJECT_CHARS).collect());
+        }
+    }
+
     /// Bytes the message may still grow by.
     fn scan_room(&self) -> usize {
         let len = self.message.raw.as_ref().map_or(0, Buffer::len);
@@ -479,6 +596,9 @@ where
         };
         let granted = raw.room_for(data.len());
         raw.extend(data.get(..granted).unwrap_or(data));
+        if granted < data.len() {
+            self.cut(NotWhole::OverBufferBudget);
+        }
         if granted < data.len() && self.state.stop_content() {
             self.ctx.metrics.budget_exhausted();
             if let Some(held_back) = self.ctx.budget_log.admit(Instant::now()) {
@@ -506,71 +626,216 @@ where
             .take()
             .unwrap_or_else(|| self.ctx.engine.current());
         // The buffer's budget share stays with the message until it is reset after the
-        // verdict, so the bytes count for as long as they are scored.
+        // verdict, so the bytes count for as long as they are scored and held.
         let raw = self
             .message
             .raw
             .as_mut()
             .map(Buffer::take_bytes)
             .unwrap_or_default();
-        let recipients = std::mem::take(&mut self.message.recipients);
-        let bytes = raw.len() as u64;
+        // Kept for the verdict should the blocking task panic.
+        let recipients = self.message.recipients.clone();
+        let message = Assembled {
+            sender: std::mem::take(&mut self.message.sender),
+            recipients: std::mem::take(&mut self.message.recipients),
+            raw,
+            size: self.message.sent,
+            message_key: self.message.message_key.take(),
+            subject: self.message.subject.take(),
+            whole: self.message.not_whole.map_or(Ok(()), Err),
+        };
         let started = Instant::now();
-        let scorer = Arc::clone(&engine);
-        let scored = tokio::task::spawn_blocking(move || scorer.score(&raw)).await;
-        let seconds = started.elapsed().as_secs_f64();
-        let verdict_id = policy::verdict_id();
+        let judged = {
+            let engine = Arc::clone(&engine);
+            let keeping = self.ctx.keeping.clone();
+            let metrics = Arc::clone(&self.ctx.metrics);
+            // Scoring, and the hold that must reach the disk before the verdict leaves,
+            // wait on the CPU and the disk: a blocking thread, not an async worker.
+            tokio::task::spawn_blocking(move || {
+                judge(&engine, keeping.as_deref(), &metrics, message)
+            })
+            .await
+        };
+        let judged = match judged {
+            Ok(j) => j,
+            Err(e) => {
+                // The task panicked. The failure mode applies: a message it may already
+                // have held is then delivered or deferred as well — kept twice, never lost.
+                let d = engine.decisions();
+                let why = format!("scoring task failed: {e}");
+                Judged {
+                    settled: Settled {
+                        verdict_id: policy::verdict_id(),
+                        decisions: d.policy.unscanned_each(&recipients, d.on_failure),
+                        held: HeldAs::Nothing,
+                        notes: Vec::new(),
+                    },
+                    score: None,
+                    scan_seconds: started.elapsed().as_secs_f64(),
+                    bytes: 0,
+                    unscanned: Some(why),
+                    on_failure: d.on_failure,
+                }
+            }
+        };
+        self.answer(&engine, judged)
+    }
+
+    /// The verdict for a judged message, with its metrics and its log line.
+    fn answer(&self, engine: &Engine, judged: Judged) -> Verdict {
         let d = engine.decisions();
-        let (decisions, edits, margin, probability, reasons) = match scored {
-            Ok(Ok(score)) => {
-                let decisions = d
-                    .policy
-                    .decide(&recipients, score.margin, score.probability);
-                let tagged = decisions.iter().any(|(_, a)| *a == Action::Tag);
+        let Judged {
+            settled,
+            score,
+            scan_seconds,
+            bytes,
+            unscanned,
+            on_failure,
+        } = judged;
+        let verdict_id = settled.verdict_id;
+        let (edits, margin, probability, mut reasons) = match (&score, &unscanned) {
+            (Some(score), None) => {
+                let tagged = settled.decisions.iter().any(|d| d.action == Action::Tag);
                 let edits = if tagged {
                     d.policy
                         .header_edits(&d.headers, &verdict_id, Action::Tag, score.margin)
                 } else {
                     Vec::new()
                 };
-                self.ctx
-                    .metrics
-                    .record_decisions(&decisions, score.margin, seconds, bytes);
-                let reasons = vec![format!("margin {}", policy::format_margin(score.margin))];
-                (decisions, edits, score.margin, score.probability, reasons)
+                let not_held = matches!(settled.held, HeldAs::NotHeld(_));
+                self.ctx.metrics.record_outcomes(
+                    &settled.decisions,
+                    not_held,
+                    score.margin,
+                    scan_seconds,
+                    bytes,
+                );
+                let mut reasons = vec![format!("margin {}", policy::format_margin(score.margin))];
+                if !not_held
+                    && settled
+                        .decisions
+                        .iter()
+                        .any(|d| d.enforced == Action::Quarantine && d.action != Action::Quarantine)
+                {
+                    reasons.push("would be quarantined with tag_only off".to_string());
+                }
+                (edits, score.margin, score.probability, reasons)
             }
-            failed => {
-                let why = match failed {
-                    Ok(Err(e)) => e.to_string(),
-                    Err(e) => format!("scoring task failed: {e}"),
-                    Ok(Ok(_)) => String::new(),
-                };
+            (_, why) => {
+                let why = why.clone().unwrap_or_default();
                 let reason = UnscannedReason::ScanFailed;
                 self.ctx.metrics.unscanned(reason);
                 tracing::warn!(verdict_id = %verdict_id, error = %safe(&why), "message not scanned");
-                let decisions = d.policy.unscanned(&recipients, d.on_failure);
-                let edits = d.policy.unscanned_edits(d.on_failure, reason);
-                (
-                    decisions,
-                    edits,
-                    f64::NAN,
-                    None,
-                    vec![format!("not scanned: {why}")],
-                )
+                let edits = d.policy.unscanned_edits(on_failure, reason);
+                (edits, f64::NAN, None, vec![format!("not scanned: {why}")])
             }
         };
-        log_verdict(&verdict_id, &decisions, margin, seconds, &engine);
+        reasons.extend(settled.notes);
+        log_verdict(
+            &verdict_id,
+            &settled.decisions,
+            &settled.held,
+            margin,
+            scan_seconds,
+            engine,
+        );
         Verdict {
             verdict_id,
             margin,
             probability: probability.unwrap_or(f64::NAN),
-            recipients: decisions
+            recipients: settled
+                .decisions
                 .into_iter()
-                .map(|(address, action)| RecipientAction { address, action })
+                .map(|d| RecipientAction {
+                    address: d.recipient,
+                    action: d.action,
+                })
                 .collect(),
             edits: edits.iter().map(wire_edit).collect(),
             reasons,
         }
+    }
+}
+
+/// A sealed message, as the session hands it to the blocking thread.
+struct Assembled {
+    sender: String,
+    recipients: Vec<String>,
+    raw: Vec<u8>,
+    size: u64,
+    message_key: Option<MessageKey>,
+    subject: Option<String>,
+    whole: Result<(), NotWhole>,
+}
+
+/// A message scored, decided and settled with the store.
+struct Judged {
+    settled: Settled,
+    /// `None` when it was not scanned.
+    score: Option<Score>,
+    scan_seconds: f64,
+    bytes: u64,
+    /// Why it was not scanned.
+    unscanned: Option<String>,
+    on_failure: crate::config::FailureMode,
+}
+
+/// Scores, decides and settles one message: the part of a verdict that waits for the CPU
+/// and the disk. Features are named only for verdicts that are not a plain accept.
+fn judge(
+    engine: &Engine,
+    keeping: Option<&Keeping>,
+    metrics: &Metrics,
+    message: Assembled,
+) -> Judged {
+    let d = engine.decisions();
+    let started = std::time::Instant::now();
+    let verdict_id = policy::verdict_id();
+    let scored = engine.score_explained(&message.raw, REASONS_KEPT, |score| {
+        d.policy
+            .decide_each(&message.recipients, score.margin, score.probability)
+            .iter()
+            .any(|x| x.action != Action::Accept || x.enforced != Action::Accept)
+    });
+    let scan_seconds = started.elapsed().as_secs_f64();
+    let (score, features, decisions, unscanned) = match scored {
+        Ok((score, features)) => {
+            let decisions =
+                d.policy
+                    .decide_each(&message.recipients, score.margin, score.probability);
+            (Some(score), features, decisions, None)
+        }
+        Err(e) => {
+            let decisions = d.policy.unscanned_each(&message.recipients, d.on_failure);
+            (None, Vec::new(), decisions, Some(e.to_string()))
+        }
+    };
+    let bytes = message.raw.len() as u64;
+    let decided = Decided {
+        verdict_id,
+        model: engine.origin(),
+        score: score.map(|s| (s.margin, s.probability)),
+        decisions,
+        features,
+        sender: &message.sender,
+        message: message.raw,
+        size: message.size,
+        message_key: message.message_key,
+        subject: message.subject,
+        whole: message.whole,
+        on_failure: d.on_failure,
+    };
+    let settled = match keeping {
+        Some(keeping) => keeping.settle(decided),
+        None => settle_without_store(decided, metrics),
+    };
+    Judged {
+        settled,
+        score,
+        scan_seconds,
+        bytes,
+        unscanned,
+        on_failure: d.on_failure,
     }
 }
 
@@ -606,26 +871,35 @@ fn append_field(raw: &mut Vec<u8>, name: &str, value: &[u8], room: usize) {
     raw.extend_from_slice(b"\r\n");
 }
 
+/// The one log line of a verdict: its id, the first recipient's domain, the strictest
+/// action sent, the strictest action the policy would have taken with tag-only off
+/// (`would_be`, so tag-only mode shows what it would have held back), whether the message
+/// was held, the margin, the scan time and the model.
 fn log_verdict(
     id: &str,
-    decisions: &[(String, Action)],
+    decisions: &[Decision],
+    held: &HeldAs,
     margin: f64,
     seconds: f64,
     engine: &Engine,
 ) {
-    let strongest = decisions
-        .iter()
-        .map(|(_, a)| *a)
-        .max_by_key(|a| a.code())
-        .unwrap_or(Action::Accept);
+    let strictest = |pick: fn(&Decision) -> Action| {
+        decisions
+            .iter()
+            .map(pick)
+            .max_by_key(|a| a.code())
+            .unwrap_or(Action::Accept)
+    };
     let domain = decisions
         .first()
-        .and_then(|(r, _)| policy::domain::recipient_domain(r))
+        .and_then(|d| policy::domain::recipient_domain(&d.recipient))
         .unwrap_or_default();
     tracing::info!(
         verdict_id = %id,
         domain = %safe(&domain),
-        action = strongest.as_str(),
+        action = strictest(|d| d.action).as_str(),
+        would_be = strictest(|d| d.enforced).as_str(),
+        held = held.as_str(),
         margin = margin,
         duration_ms = seconds * 1e3,
         model = engine.origin(),
@@ -647,6 +921,9 @@ fn wire_edit(edit: &HeaderEdit) -> Edit {
         },
     }
 }
+
+/// Most characters of a Subject kept for the journal.
+const MAX_SUBJECT_CHARS: usize = 256;
 
 /// The read buffer's usual size; after a larger frame it is given back (see
 /// [`shrink_after_use`]).

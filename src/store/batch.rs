@@ -12,7 +12,7 @@
 //! entry costs only itself, not its batch.
 
 use std::sync::Arc;
-use std::sync::mpsc::{Receiver, RecvTimeoutError, SyncSender, TrySendError, sync_channel};
+use std::sync::mpsc::{Receiver, SyncSender, TryRecvError, TrySendError, sync_channel};
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
 
@@ -121,6 +121,10 @@ impl Drop for JournalWriter {
     }
 }
 
+/// Longest sleep while a batch fills: short enough that a closed channel or a full batch
+/// is noticed soon, long enough that the thread stays asleep under load.
+const NAP: Duration = Duration::from_millis(10);
+
 fn run(
     store: &dyn Store,
     settings: &BatchSettings,
@@ -135,16 +139,24 @@ fn run(
             Ok(entry) => batch.push(entry),
             Err(_) => return,
         }
+        // Then let the batch fill without waking for each entry: a sender only wakes a
+        // receiver that waits in `recv`, so under load this thread wakes once per batch
+        // instead of once per message. A full queue is the only thing cut short.
         let deadline = Instant::now() + settings.max_delay;
         let mut open = true;
         while batch.len() < max_batch {
-            let left = deadline.saturating_duration_since(Instant::now());
-            match receiver.recv_timeout(left) {
+            match receiver.try_recv() {
                 Ok(entry) => batch.push(entry),
-                Err(RecvTimeoutError::Timeout) => break,
-                Err(RecvTimeoutError::Disconnected) => {
+                Err(TryRecvError::Disconnected) => {
                     open = false;
                     break;
+                }
+                Err(TryRecvError::Empty) => {
+                    let left = deadline.saturating_duration_since(Instant::now());
+                    if left.is_zero() {
+                        break;
+                    }
+                    std::thread::sleep(left.min(NAP));
                 }
             }
         }

@@ -8,7 +8,7 @@ use std::path::PathBuf;
 use std::time::Duration;
 
 /// A store operation that failed.
-#[derive(Debug, thiserror::Error)]
+#[derive(Debug, Clone, thiserror::Error)]
 pub enum StoreError {
     /// The folder that should hold the store does not exist.
     #[error(
@@ -114,6 +114,19 @@ pub enum StoreError {
         /// The system's or SQLite's message.
         detail: String,
     },
+    /// The store file was removed or replaced while this process had it open: what it
+    /// writes now goes to a file nobody will read again, so a write reported as done would
+    /// be lost. Every write fails with this until the process opens the store again.
+    #[error(
+        "{}: the store file was removed or replaced while tamis had it open ({detail}); what was just written is not in the file at this path, so it was not counted as kept; restore the file or folder, or restart tamis to open a new store there",
+        path.display()
+    )]
+    Gone {
+        /// The store path.
+        path: PathBuf,
+        /// What changed.
+        detail: String,
+    },
     /// A stored record could not be read back (a damaged blob, an unknown code).
     #[error(
         "{}: a stored record is damaged ({detail}); the rest of the store is usable; run `PRAGMA integrity_check` on a copy",
@@ -163,6 +176,7 @@ impl StoreError {
             | StoreError::Busy { path, .. }
             | StoreError::Full { path, .. }
             | StoreError::Io { path, .. }
+            | StoreError::Gone { path, .. }
             | StoreError::DamagedRecord { path, .. }
             | StoreError::Invalid { path, .. }
             | StoreError::Sqlite { path, .. } => path,
@@ -181,6 +195,7 @@ impl StoreError {
             StoreError::Busy { .. } => "busy",
             StoreError::Full { .. } => "full",
             StoreError::Io { .. } => "io",
+            StoreError::Gone { .. } => "gone",
             StoreError::DamagedRecord { .. } => "damaged-record",
             StoreError::Invalid { .. } => "invalid",
             StoreError::Sqlite { .. } => "sqlite",

@@ -26,13 +26,15 @@
 //!   as unmatched and never counted ([`ReportStatus`]).
 //!
 //! The figures per domain and their exact definitions are in [`figures`]; the audit
-//! sample's method in [`sample`]; [`JournalWriter`] batches journal entries for the daemon;
-//! what the status page reads besides the figures in [`views`].
+//! sample's method in [`sample`]; [`JournalWriter`] batches journal entries for the daemon,
+//! and [`HoldWriter`] commits the holds of concurrent sessions together; what the status
+//! page reads besides the figures in [`views`].
 
 pub mod batch;
 pub mod blob;
 pub mod error;
 pub mod figures;
+pub mod holds;
 pub mod record;
 pub mod sample;
 pub mod sqlite;
@@ -44,10 +46,11 @@ use std::time::Duration;
 pub use batch::{BatchSettings, JournalWriter};
 pub use error::StoreError;
 pub use figures::{DomainFigures, Rate, TargetCheck};
+pub use holds::{HoldRequest, HoldSettings, HoldWriter};
 pub use record::{
     AuditItem, Claim, DomainOutcome, HeldFilter, HeldMessage, HeldState, HeldSummary, HeldTotals,
     Hold, HoldOutcome, JournalEntry, MessageKey, NewReport, PurgeCounts, ReleaseOutcome,
-    ReportKind, ReportReceipt, ReportSource, ReportStatus, StoredReport, UnixTime,
+    ReportKind, ReportReceipt, ReportSource, ReportStatus, ReportTally, StoredReport, UnixTime,
 };
 pub use sqlite::SqliteStore;
 pub use views::{Buckets, DomainHeld, MarginBins, MarginHistogram, VolumeBucket};
@@ -221,4 +224,30 @@ pub trait Store: Send + Sync {
     /// The first `max_bytes` of a held message in any state (enough for its header
     /// section), without inflating the rest; `None` when nothing is held under the id.
     fn held_head(&self, verdict_id: &str, max_bytes: usize) -> Result<Option<Vec<u8>>, StoreError>;
+
+    // --- Following reports (the daemon's metrics) ---------------------------------------
+
+    /// The number of the newest report, 0 when there is none: where a reader that counts
+    /// reports from now on starts.
+    fn last_report_id(&self) -> Result<i64, StoreError>;
+
+    /// Reports numbered above `after`, recorded by any process (the operator commands
+    /// write them), oldest first, at most `limit` reports, each with the outcomes it
+    /// applies to ([`ReportTally`]).
+    fn reports_after(&self, after: i64, limit: u32) -> Result<Vec<ReportTally>, StoreError>;
+
+    // --- Holding many at once (group commit) --------------------------------------------
+
+    /// Holds several messages with one commit flushed to disk once: for each, what
+    /// [`Store::hold`] does, the results in order. A message the store refuses as such
+    /// (an invalid entry) costs only itself. The default holds them one by one.
+    fn hold_all(
+        &self,
+        items: &[(&JournalEntry, &Hold<'_>)],
+    ) -> Vec<Result<HoldOutcome, StoreError>> {
+        items
+            .iter()
+            .map(|(entry, hold)| self.hold(entry, hold))
+            .collect()
+    }
 }

@@ -492,6 +492,24 @@ pub struct AuditItem {
     pub reviewed: Option<ReportKind>,
 }
 
+/// A report as the daemon's metrics count it: what it says, who said it, and the
+/// outcome of each recipient domain of its verdict that it applies to.
+#[derive(Debug, Clone, PartialEq)]
+pub struct ReportTally {
+    /// The store's number for the report; numbers only grow.
+    pub id: i64,
+    /// Junk or not junk.
+    pub kind: ReportKind,
+    /// Who.
+    pub source: ReportSource,
+    /// Whether it counts as evidence.
+    pub status: ReportStatus,
+    /// For a matched report, the outcome of each recipient domain it applies to (the
+    /// reporter's domain, or every domain of the verdict for a report naming none), in the
+    /// verdict's order; empty for an unmatched report or one whose verdict was purged.
+    pub outcomes: Vec<DomainOutcome>,
+}
+
 /// Serialises an action by its protocol name.
 pub(crate) fn action_name<S: Serializer>(
     action: &Action,

@@ -17,7 +17,7 @@ use tamis::server::engine::{Decisions, Engine, SharedEngine};
 use tamis::server::listen::{Running, start};
 
 /// The built-in demonstration model, trained once for the whole test binary.
-fn model() -> &'static LinearModel {
+pub(crate) fn model() -> &'static LinearModel {
     static MODEL: OnceLock<LinearModel> = OnceLock::new();
     MODEL.get_or_init(|| tamis::model::builtin::demonstration_model().expect("builds"))
 }
@@ -26,7 +26,26 @@ fn loopback() -> Config {
     let mut config = Config::default();
     config.listen.tcp = Some("127.0.0.1:0".parse().expect("addr"));
     config.metrics = Some("127.0.0.1:0".parse().expect("addr"));
+    config.store.path = fresh_store_path();
     config
+}
+
+/// A store file of its own for each daemon, in one temporary folder for the test binary
+/// (never the user's own state folder).
+pub(crate) fn fresh_store_path() -> std::path::PathBuf {
+    use std::sync::atomic::{AtomicUsize, Ordering};
+    static DIR: OnceLock<tempfile::TempDir> = OnceLock::new();
+    static NEXT: AtomicUsize = AtomicUsize::new(0);
+    let dir = DIR.get_or_init(|| {
+        tempfile::Builder::new()
+            .prefix("tamis-it-stores")
+            .tempdir()
+            .expect("temp dir")
+    });
+    dir.path().join(format!(
+        "store-{}.sqlite",
+        NEXT.fetch_add(1, Ordering::SeqCst)
+    ))
 }
 
 async fn daemon(config: Config) -> (Running, Arc<Metrics>) {
@@ -166,7 +185,7 @@ fn still_serves(addr: SocketAddr) {
     assert!(verdict.margin.is_finite());
 }
 
-fn http_get(addr: SocketAddr, path: &str) -> String {
+pub(crate) fn http_get(addr: SocketAddr, path: &str) -> String {
     let mut s = TcpStream::connect(addr).expect("connect");
     s.set_read_timeout(Some(Duration::from_secs(10)))
         .expect("timeout");
@@ -705,7 +724,11 @@ async fn metrics_pass_promtool_and_are_scraped_by_prometheus() {
         let body = response.split("\r\n\r\n").nth(1).expect("body").to_string();
         for family in ["tamis_messages_total", "tamis_margin", "tamis_scan_duration_seconds",
             "tamis_scanned_bytes_total", "tamis_connections_open", "tamis_protocol_errors_total",
-            "tamis_reloads_total", "tamis_model_info"] {
+            "tamis_reloads_total", "tamis_model_info", "tamis_would_quarantine_total",
+            "tamis_quarantine_not_held_total", "tamis_holds_total", "tamis_hold_duration_seconds",
+            "tamis_held_messages", "tamis_held_bytes", "tamis_store_errors_total",
+            "tamis_journal_entries_lost_total", "tamis_reports_total", "tamis_releases_total",
+            "tamis_reports_unmatched_total", "tamis_purged_total"] {
             assert!(body.contains(family), "{family} missing");
         }
         // External check: `promtool check metrics` from Debian's prometheus package.
@@ -758,7 +781,7 @@ async fn metrics_pass_promtool_and_are_scraped_by_prometheus() {
     assert!(running.stop().await);
 }
 
-fn free_port() -> u16 {
+pub(crate) fn free_port() -> u16 {
     std::net::TcpListener::bind("127.0.0.1:0")
         .expect("bind")
         .local_addr()
@@ -766,7 +789,7 @@ fn free_port() -> u16 {
         .port()
 }
 
-fn metric(status: SocketAddr, prefix: &str) -> Option<f64> {
+pub(crate) fn metric(status: SocketAddr, prefix: &str) -> Option<f64> {
     let text = http_get(status, "/metrics");
     text.lines()
         .find(|l| l.starts_with(prefix))
@@ -784,7 +807,7 @@ fn a_garbage_model_before_sighup_leaves_the_old_model_serving() {
     std::fs::write(
         &config,
         format!(
-            "metrics = \"127.0.0.1:{status}\"\n[listen]\ntcp = \"127.0.0.1:{relay}\"\n[model]\npath = \"model.tamis\"\n"
+            "metrics = \"127.0.0.1:{status}\"\n[listen]\ntcp = \"127.0.0.1:{relay}\"\n[model]\npath = \"model.tamis\"\n[store]\npath = \"store.sqlite\"\n"
         ),
     )
     .expect("write config");
@@ -876,6 +899,9 @@ fn tamis_demo_prints_a_verdict_table_per_domain() {
     let out = std::process::Command::new(env!("CARGO_BIN_EXE_tamis"))
         .args(["demo", "--messages", "80", "--dir"])
         .arg(dir.path())
+        // The demo's daemon keeps its store in the default place: keep it in the test's
+        // folder, not the user's own state folder.
+        .env("STATE_DIRECTORY", dir.path())
         .output()
         .expect("run tamis demo");
     assert!(

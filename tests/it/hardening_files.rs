@@ -421,7 +421,7 @@ fn serve_config(dir: &Path, model: &Path) -> (PathBuf, SocketAddr, SocketAddr) {
     std::fs::write(
         &config,
         format!(
-            "metrics = \"127.0.0.1:{status}\"\n[listen]\ntcp = \"127.0.0.1:{relay}\"\n[limits]\ngrace_period = \"3s\"\n[model]\npath = \"{}\"\n",
+            "metrics = \"127.0.0.1:{status}\"\n[listen]\ntcp = \"127.0.0.1:{relay}\"\n[limits]\ngrace_period = \"3s\"\n[model]\npath = \"{}\"\n[store]\npath = \"store.sqlite\"\n",
             model.display()
         ),
     )
@@ -570,6 +570,7 @@ async fn in_process_daemon() -> tamis::server::listen::Running {
     let mut config = Config::default();
     config.listen.tcp = Some("127.0.0.1:0".parse().expect("addr"));
     config.metrics = Some("127.0.0.1:0".parse().expect("addr"));
+    config.store.path = crate::daemon::fresh_store_path();
     let decisions = Decisions {
         policy: config.policy.clone(),
         headers: config.headers.clone(),

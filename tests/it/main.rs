@@ -5,6 +5,7 @@ mod config_policy;
 mod corpus_readers;
 mod cpython_email;
 mod daemon;
+mod daemon_store;
 mod demo_corpus;
 mod encoded_words;
 mod eval_reference;

@@ -457,6 +457,69 @@ fn expectations() -> Vec<(&'static str, Vec<Expect>)> {
                 F(fault(FaultCode::ShuttingDown, "shutting down")),
             ]),
         ),
+        ("message_quarantine.txt", {
+            let message = || {
+                vec![
+                    F(sender("alice@example.org")),
+                    F(rcpt("dan@example.net")),
+                    F(field("From", b"Prize Desk <win@promo.example>")),
+                    F(field("Subject", b"You have won")),
+                    F(field("Message-ID", b"<p-77@promo.example>")),
+                    F(chunk(b"Claim your prize today.\r\n")),
+                    F(chunk(b"Send your bank details.\r\n")),
+                    F(Frame::Seal),
+                    F(verdict(
+                        "v-0006",
+                        2.5,
+                        0.9921875,
+                        &[("dan@example.net", Action::Quarantine)],
+                        &[],
+                        &["margin 2.5000"],
+                    )),
+                ]
+            };
+            let mut all = with_handshake(message());
+            all.extend(message());
+            all
+        }),
+        (
+            "message_not_held.txt",
+            vec![
+                F(hello(1)),
+                F(Frame::Welcome {
+                    version: 1,
+                    max_frame: 65_536,
+                    max_message: 64,
+                    server: s("tamis/0.1"),
+                }),
+                F(sender("alice@example.org")),
+                F(rcpt("dan@example.net")),
+                F(field("Subject", b"You have won a prize")),
+                F(chunk(b"Claim your prize today.\r\n")),
+                F(chunk(b"Send your bank details.\r\n")),
+                F(Frame::Fault {
+                    code: FaultCode::MessageTooLarge,
+                    fatal: false,
+                    text: s("message larger than max_message; the rest is not read"),
+                }),
+                F(Frame::Seal),
+                F(verdict(
+                    "v-0007",
+                    2.5,
+                    0.9921875,
+                    &[("dan@example.net", Action::Tag)],
+                    &[(
+                        EditOp::AddField,
+                        "X-Tamis-Verdict",
+                        "tag; id=v-0007; margin=2.5000",
+                    )],
+                    &[
+                        "margin 2.5000",
+                        "not held: it is larger than max_message; tag instead of quarantine",
+                    ],
+                )),
+            ],
+        ),
     ]
 }
 
@@ -842,6 +905,7 @@ fn state_machine_accepts_the_vector_conversations() {
         "fault_shutting_down.txt",
         "handshake_secret.txt",
         "fault_denied.txt",
+        "message_quarantine.txt",
     ] {
         for (i, outcome) in replay_client(name).into_iter().enumerate() {
             assert_eq!(
@@ -865,6 +929,33 @@ fn state_machine_reports_the_bad_address_of_its_vector() {
         .collect();
     assert_eq!(notices[3], (Keep::Blank, vec![FaultCode::BadAddress]));
     for (i, n) in notices.iter().enumerate().filter(|(i, _)| *i != 3) {
+        assert_eq!(n, &(Keep::All, vec![]), "client frame {i}");
+    }
+}
+
+#[test]
+fn state_machine_reports_the_cut_of_the_not_held_vector() {
+    // The server of `message_not_held.txt` announces max_message = 64.
+    let mut state = SessionState::new(Limits {
+        max_message: 64,
+        ..Limits::default()
+    });
+    let notices: Vec<(Keep, Vec<FaultCode>)> = read_vector("message_not_held.txt")
+        .iter()
+        .filter(|l| l.dir == Dir::Client)
+        .filter_map(|l| parse_frame(&l.bytes, MAX).ok().flatten())
+        .map(|(frame, _)| {
+            let a = state.accept_client(&frame).expect("allowed");
+            (a.keep, a.notices)
+        })
+        .collect();
+    assert_eq!(notices.len(), 7);
+    // The second chunk passes 64 bytes (27 + 25 + 25): 12 of its bytes are kept.
+    assert_eq!(
+        notices[5],
+        (Keep::Prefix(12), vec![FaultCode::MessageTooLarge])
+    );
+    for (i, n) in notices.iter().enumerate().filter(|(i, _)| *i != 5) {
         assert_eq!(n, &(Keep::All, vec![]), "client frame {i}");
     }
 }

@@ -21,7 +21,8 @@ use tamis::metrics::Metrics;
 use tamis::model::LinearModel;
 use tamis::policy::Action;
 use tamis::server::engine::{Decisions, Engine, SharedEngine};
-use tamis::server::listen::{Running, start_with_store};
+use tamis::server::keeping::{Keeping, KeepingSettings};
+use tamis::server::listen::{Running, start_with};
 use tamis::store::{
     Claim, DomainOutcome, Hold, JournalEntry, NewReport, ReleaseOutcome, ReportKind, ReportSource,
     ReportStatus, SqliteStore, Store, StoreOptions,
@@ -76,14 +77,16 @@ async fn daemon(config: &Config, store: Arc<SqliteStore>) -> Running {
     };
     let engine = Engine::new(model().clone(), "test model", decisions).expect("engine");
     let metrics = Arc::new(Metrics::new(config.policy.domains().keys()).expect("metrics"));
-    start_with_store(
-        config,
-        SharedEngine::new(engine),
-        metrics,
-        Some(store as Arc<dyn Store>),
+    let keeping = Keeping::start(
+        store as Arc<dyn Store>,
+        Arc::clone(&metrics),
+        KeepingSettings::default(),
+        false,
     )
-    .await
-    .expect("binds on loopback")
+    .expect("keeping");
+    start_with(config, SharedEngine::new(engine), metrics, Some(keeping))
+        .await
+        .expect("binds on loopback")
 }
 
 fn now() -> i64 {

@@ -28,7 +28,8 @@ use super::figures::{self, ActionCount, DomainFigures, Evidence, UnmatchedCount}
 use super::record::{
     AuditItem, Claim, DomainOutcome, HeldFilter, HeldMessage, HeldState, HeldSummary, HeldTotals,
     Hold, HoldOutcome, JournalEntry, MessageKey, NewReport, PurgeCounts, ReleaseOutcome,
-    ReportKind, ReportReceipt, ReportSource, ReportStatus, StoredReport, UnixTime, now,
+    ReportKind, ReportReceipt, ReportSource, ReportStatus, ReportTally, StoredReport, UnixTime,
+    now,
 };
 use super::views::{Buckets, DomainHeld, MarginBins, MarginHistogram, VolumeBucket};
 use super::{DAY, Store, StoreError, StoreOptions, sample};
@@ -43,6 +44,9 @@ const MAX_VERDICT_ID: usize = 64;
 /// A store in one SQLite file.
 pub struct SqliteStore {
     path: PathBuf,
+    /// The device and inode of the file when it was opened: a write is confirmed only
+    /// while the path still names this file (see [`SqliteStore::check_in_place`]).
+    identity: (u64, u64),
     options: StoreOptions,
     writer: Mutex<Writer>,
     reader: Mutex<Connection>,
@@ -77,8 +81,14 @@ impl SqliteStore {
         open::prepare_file(path)?;
         let writer = open::connect(path, options.busy_timeout, true)?;
         let reader = open::connect(path, options.busy_timeout, false)?;
+        let identity = file_identity(path).map_err(|e| StoreError::Io {
+            path: path.to_path_buf(),
+            operation: "open the store",
+            detail: e.to_string(),
+        })?;
         Ok(SqliteStore {
             path: path.to_path_buf(),
+            identity,
             options,
             writer: Mutex::new(Writer {
                 conn: writer,
@@ -108,6 +118,25 @@ impl SqliteStore {
             }
             Ok(found)
         })
+    }
+
+    /// Fails with [`StoreError::Gone`] unless the store path still names the file that
+    /// was opened. SQLite goes on writing to a file that was deleted or renamed (its
+    /// descriptors stay valid), so without this check a hold committed after an operator
+    /// removed the store folder would be confirmed and then lost when the process exits.
+    fn check_in_place(&self, operation: &'static str) -> Result<(), StoreError> {
+        let gone = |detail: String| StoreError::Gone {
+            path: self.path.clone(),
+            detail: format!("{detail} while trying to {operation}"),
+        };
+        match file_identity(&self.path) {
+            Ok(identity) if identity == self.identity => Ok(()),
+            Ok(_) => Err(gone("another file now has its name".to_string())),
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => {
+                Err(gone("the file or its folder no longer exists".to_string()))
+            }
+            Err(e) => Err(gone(format!("it can no longer be looked up: {e}"))),
+        }
     }
 
     fn ctx(&self, operation: &'static str) -> Ctx<'_> {
@@ -142,6 +171,9 @@ impl SqliteStore {
             .map_err(|e| ctx.sql(e))?;
         let out = f(&tx, ctx).map_err(|e| ctx.map(e))?;
         tx.commit().map_err(|e| ctx.sql(e))?;
+        drop(guard);
+        // After the commit: a file removed before or during it took the write with it.
+        self.check_in_place(operation)?;
         Ok(out)
     }
 
@@ -188,6 +220,104 @@ impl SqliteStore {
             }
         }
     }
+}
+
+/// A hold checked, compressed and hashed, ready for its transaction.
+struct PreparedHold<'a> {
+    entry: &'a JournalEntry,
+    hold: &'a Hold<'a>,
+    stored: Vec<u8>,
+    key: Vec<u8>,
+    recipients: String,
+    expires_at: i64,
+}
+
+impl SqliteStore {
+    /// Checks a hold and does its CPU work (compression, hashing) before any lock.
+    fn prepare_hold<'a>(
+        &self,
+        entry: &'a JournalEntry,
+        hold: &'a Hold<'a>,
+    ) -> Result<PreparedHold<'a>, StoreError> {
+        let ctx = self.ctx("hold a message");
+        check_entry(entry).map_err(|e| ctx.invalid(e))?;
+        if hold.recipients.is_empty() {
+            return Err(ctx.invalid(format!(
+                "verdict {} holds no recipient; give the recipients whose copy is held",
+                entry.verdict_id
+            )));
+        }
+        Ok(PreparedHold {
+            entry,
+            hold,
+            stored: blob::compress(hold.message),
+            key: content_key(hold),
+            recipients: serde_json::to_string(hold.recipients).unwrap_or_else(|_| "[]".to_string()),
+            expires_at: entry
+                .at
+                .saturating_add(i64::from(self.options.quarantine_days) * DAY),
+        })
+    }
+}
+
+/// Writes one hold inside a transaction: nothing when the same message is already held
+/// under another verdict.
+fn write_hold(
+    tx: &Connection,
+    ctx: Ctx<'_>,
+    p: &PreparedHold<'_>,
+    record_subject: bool,
+) -> Result<HoldOutcome, Failure> {
+    let (entry, hold) = (p.entry, p.hold);
+    let earlier: Option<String> = tx
+        .prepare_cached(
+            "SELECT j.verdict_id FROM held h JOIN journal j ON j.id = h.journal_id
+             WHERE h.content_key = ?1 AND h.state = ?2 AND j.verdict_id != ?3 LIMIT 1",
+        )?
+        .query_row(
+            params![p.key, HeldState::Held.code(), entry.verdict_id],
+            |r| r.get(0),
+        )
+        .optional()?;
+    if let Some(verdict_id) = earlier {
+        return Ok(HoldOutcome::AlreadyHeld { verdict_id });
+    }
+    let mut models = HashMap::new();
+    let journal = match insert_entry(tx, ctx, entry, record_subject, &mut models)? {
+        Some(id) => id,
+        None => journal_id(tx, &entry.verdict_id)?
+            .ok_or_else(|| ctx.damaged("a journal entry vanished inside its transaction"))?,
+    };
+    let inserted = tx
+        .prepare_cached(
+            "INSERT INTO held (journal_id, held_at, expires_at, state, state_at, sender, recipients, size, stored_size, content_key)
+             VALUES (?1, ?2, ?3, ?4, ?2, ?5, ?6, ?7, ?8, ?9)
+             ON CONFLICT (journal_id) DO NOTHING",
+        )?
+        .execute(params![
+            journal,
+            entry.at,
+            p.expires_at,
+            HeldState::Held.code(),
+            hold.sender,
+            p.recipients,
+            to_i64(hold.message.len() as u64, "message size", ctx)?,
+            to_i64(p.stored.len() as u64, "stored size", ctx)?,
+            p.key,
+        ])?;
+    if inserted == 1 {
+        let held_id = tx.last_insert_rowid();
+        tx.prepare_cached("INSERT INTO held_content (held_id, content) VALUES (?1, ?2)")?
+            .execute(params![held_id, p.stored])?;
+    }
+    Ok(HoldOutcome::Held)
+}
+
+/// The device and inode number of the file at `path`, following no symbolic link.
+fn file_identity(path: &Path) -> std::io::Result<(u64, u64)> {
+    use std::os::unix::fs::MetadataExt;
+    let meta = std::fs::symlink_metadata(path)?;
+    Ok((meta.dev(), meta.ino()))
 }
 
 // --- Encoding helpers ----------------------------------------------------------------------
@@ -569,66 +699,10 @@ impl Store for SqliteStore {
     }
 
     fn hold(&self, entry: &JournalEntry, hold: &Hold<'_>) -> Result<HoldOutcome, StoreError> {
-        let ctx = self.ctx("hold a message");
-        check_entry(entry).map_err(|e| ctx.invalid(e))?;
-        if hold.recipients.is_empty() {
-            return Err(ctx.invalid(format!(
-                "verdict {} holds no recipient; give the recipients whose copy is held",
-                entry.verdict_id
-            )));
-        }
-        // Compress and hash before taking the write lock: CPU work, not the store's.
-        let stored = blob::compress(hold.message);
-        let key = content_key(hold);
-        let recipients =
-            serde_json::to_string(hold.recipients).unwrap_or_else(|_| "[]".to_string());
-        let expires_at = entry
-            .at
-            .saturating_add(i64::from(self.options.quarantine_days) * DAY);
+        let prepared = self.prepare_hold(entry, hold)?;
         let record_subject = self.options.record_subject;
         self.write("hold a message", true, |tx, ctx| {
-            let earlier: Option<String> = tx
-                .prepare_cached(
-                    "SELECT j.verdict_id FROM held h JOIN journal j ON j.id = h.journal_id
-                     WHERE h.content_key = ?1 AND h.state = ?2 AND j.verdict_id != ?3 LIMIT 1",
-                )?
-                .query_row(
-                    params![key, HeldState::Held.code(), entry.verdict_id],
-                    |r| r.get(0),
-                )
-                .optional()?;
-            if let Some(verdict_id) = earlier {
-                return Ok(HoldOutcome::AlreadyHeld { verdict_id });
-            }
-            let mut models = HashMap::new();
-            let journal = match insert_entry(tx, ctx, entry, record_subject, &mut models)? {
-                Some(id) => id,
-                None => journal_id(tx, &entry.verdict_id)?
-                    .ok_or_else(|| ctx.damaged("a journal entry vanished inside its transaction"))?,
-            };
-            let inserted = tx
-                .prepare_cached(
-                    "INSERT INTO held (journal_id, held_at, expires_at, state, state_at, sender, recipients, size, stored_size, content_key)
-                     VALUES (?1, ?2, ?3, ?4, ?2, ?5, ?6, ?7, ?8, ?9)
-                     ON CONFLICT (journal_id) DO NOTHING",
-                )?
-                .execute(params![
-                    journal,
-                    entry.at,
-                    expires_at,
-                    HeldState::Held.code(),
-                    hold.sender,
-                    recipients,
-                    to_i64(hold.message.len() as u64, "message size", ctx)?,
-                    to_i64(stored.len() as u64, "stored size", ctx)?,
-                    key,
-                ])?;
-            if inserted == 1 {
-                let held_id = tx.last_insert_rowid();
-                tx.prepare_cached("INSERT INTO held_content (held_id, content) VALUES (?1, ?2)")?
-                    .execute(params![held_id, stored])?;
-            }
-            Ok(HoldOutcome::Held)
+            write_hold(tx, ctx, &prepared, record_subject)
         })
     }
 
@@ -1070,5 +1144,119 @@ impl Store for SqliteStore {
         self.read_ctx("read the start of a held message", |tx, ctx| {
             views::held_head(tx, ctx, verdict_id, max_bytes)
         })
+    }
+
+    fn last_report_id(&self) -> Result<i64, StoreError> {
+        self.read("find the newest report", |tx| {
+            Ok(tx
+                .prepare_cached("SELECT coalesce(max(id), 0) FROM report")?
+                .query_row([], |r| r.get(0))?)
+        })
+    }
+
+    fn reports_after(&self, after: i64, limit: u32) -> Result<Vec<ReportTally>, StoreError> {
+        self.read_ctx("read new reports", |tx, ctx| {
+            // One row per report and domain it applies to; a report with none (unmatched,
+            // or its verdict purged) still gives one row, with NULL domain columns.
+            let mut stmt = tx.prepare_cached(
+                "SELECT r.id, r.kind, r.source, r.status, d.domain, d.recipients, d.action, d.enforced
+                 FROM report r
+                 LEFT JOIN journal_domain d ON d.journal_id = r.journal_id AND r.status = 0
+                      AND (r.domain IS NULL OR r.domain = d.domain)
+                 WHERE r.id IN (SELECT id FROM report WHERE id > ?1 ORDER BY id LIMIT ?2)
+                 ORDER BY r.id, d.ord",
+            )?;
+            let mut rows = stmt.query(params![after, i64::from(limit)])?;
+            let mut out: Vec<ReportTally> = Vec::new();
+            while let Some(r) = rows.next()? {
+                let id: i64 = r.get(0)?;
+                if out.last().is_none_or(|t| t.id != id) {
+                    let (kind, source, status): (i64, i64, i64) = (r.get(1)?, r.get(2)?, r.get(3)?);
+                    out.push(ReportTally {
+                        id,
+                        kind: ReportKind::from_code(kind)
+                            .ok_or_else(|| ctx.damaged(format!("report {id}: kind {kind}")))?,
+                        source: ReportSource::from_code(source)
+                            .ok_or_else(|| ctx.damaged(format!("report {id}: source {source}")))?,
+                        status: ReportStatus::from_code(status)
+                            .ok_or_else(|| ctx.damaged(format!("report {id}: status {status}")))?,
+                        outcomes: Vec::new(),
+                    });
+                }
+                let domain: Option<String> = r.get(4)?;
+                if let (Some(domain), Some(tally)) = (domain, out.last_mut()) {
+                    let recipients: i64 = r.get(5)?;
+                    tally.outcomes.push(DomainOutcome {
+                        domain,
+                        recipients: u32::try_from(recipients)
+                            .map_err(|_| ctx.damaged(format!("recipient count {recipients}")))?,
+                        action: action_of(r.get(6)?, ctx)?,
+                        enforced: action_of(r.get(7)?, ctx)?,
+                    });
+                }
+            }
+            Ok(out)
+        })
+    }
+
+    fn hold_all(
+        &self,
+        items: &[(&JournalEntry, &Hold<'_>)],
+    ) -> Vec<Result<HoldOutcome, StoreError>> {
+        // Checked, compressed and hashed first, outside the write lock.
+        let prepared: Vec<Result<PreparedHold<'_>, StoreError>> = items
+            .iter()
+            .map(|(entry, hold)| self.prepare_hold(entry, hold))
+            .collect();
+        let record_subject = self.options.record_subject;
+        let written = self.write("hold messages", true, |tx, ctx| {
+            let mut out = Vec::with_capacity(prepared.len());
+            for item in &prepared {
+                let Ok(p) = item else {
+                    out.push(None);
+                    continue;
+                };
+                // A savepoint per message: one that cannot be kept costs only itself.
+                tx.execute_batch("SAVEPOINT one_hold")?;
+                match write_hold(tx, ctx, p, record_subject) {
+                    Ok(outcome) => {
+                        tx.execute_batch("RELEASE one_hold")?;
+                        out.push(Some(Ok(outcome)));
+                    }
+                    Err(Failure::Store(
+                        e @ (StoreError::Invalid { .. } | StoreError::DamagedRecord { .. }),
+                    )) => {
+                        tx.execute_batch("ROLLBACK TO one_hold; RELEASE one_hold")?;
+                        out.push(Some(Err(e)));
+                    }
+                    Err(other) => return Err(other),
+                }
+            }
+            Ok(out)
+        });
+        match written {
+            Ok(results) => prepared
+                .into_iter()
+                .zip(results)
+                .map(|(p, r)| match (p, r) {
+                    (Err(e), _) => Err(e),
+                    (Ok(_), Some(r)) => r,
+                    (Ok(_), None) => Err(self.ctx("hold messages").invalid("no result")),
+                })
+                .collect(),
+            // Too large together (a full disk, a file-size limit): each on its own, so the
+            // ones that still fit are kept.
+            Err(StoreError::Full { .. } | StoreError::Io { .. }) if items.len() > 1 => items
+                .iter()
+                .map(|(entry, hold)| self.hold(entry, hold))
+                .collect(),
+            Err(e) => prepared
+                .into_iter()
+                .map(|p| match p {
+                    Err(own) => Err(own),
+                    Ok(_) => Err(e.clone()),
+                })
+                .collect(),
+        }
     }
 }
