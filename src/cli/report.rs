@@ -224,15 +224,6 @@ struct Outcome {
     detail: String,
 }
 
-fn status_name(status: ReportStatus) -> &'static str {
-    match status {
-        ReportStatus::Matched => "matched",
-        ReportStatus::UnknownVerdict => "unknown-verdict",
-        ReportStatus::DomainMismatch => "domain-mismatch",
-        ReportStatus::NoReporterDomain => "no-reporter-domain",
-    }
-}
-
 /// The plain-words account of a recorded report.
 pub fn explain(receipt: &ReportReceipt, verdict_id: &str, domain: Option<&str>) -> String {
     let id = shown(verdict_id);
@@ -397,7 +388,7 @@ fn record(
     Ok(Outcome {
         input,
         joined_by: Some(join),
-        status: status_name(receipt.status),
+        status: receipt.status.as_str(),
         counted: receipt.status.is_matched(),
         report_id: Some(receipt.id),
         with_features,

@@ -505,7 +505,7 @@ impl Keeping {
             for tally in &page {
                 cursor = cursor.max(tally.id);
                 if tally.status != ReportStatus::Matched {
-                    self.metrics.unmatched_report(status_name(tally.status));
+                    self.metrics.unmatched_report(tally.status.as_str());
                     continue;
                 }
                 for outcome in &tally.outcomes {
@@ -663,14 +663,5 @@ fn source_name(source: ReportSource) -> &'static str {
         ReportSource::Operator => "operator",
         ReportSource::Audit => "audit",
         ReportSource::Release => "release",
-    }
-}
-
-fn status_name(status: ReportStatus) -> &'static str {
-    match status {
-        ReportStatus::Matched => "matched",
-        ReportStatus::UnknownVerdict => "unknown-verdict",
-        ReportStatus::DomainMismatch => "domain-mismatch",
-        ReportStatus::NoReporterDomain => "no-reporter-domain",
     }
 }

@@ -406,6 +406,16 @@ pub enum ReportStatus {
 }
 
 impl ReportStatus {
+    /// The status as a stable name, as in JSON output and metric labels.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ReportStatus::Matched => "matched",
+            ReportStatus::UnknownVerdict => "unknown-verdict",
+            ReportStatus::DomainMismatch => "domain-mismatch",
+            ReportStatus::NoReporterDomain => "no-reporter-domain",
+        }
+    }
+
     pub(crate) fn code(self) -> i64 {
         match self {
             ReportStatus::Matched => 0,
