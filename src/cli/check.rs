@@ -16,6 +16,7 @@ use serde::Serialize;
 use super::input::{BadInput, Format};
 use super::{EXIT_BAD_INPUT, EXIT_FAILURE, EXIT_OK};
 use crate::proto::client::{Client, ClientError};
+use crate::server::access::Secret;
 
 /// Largest message file sent. The daemon scans at most its `limits.max_message_bytes`
 /// (10 MiB by default) and answers for the rest unscanned; more than this is never useful
@@ -43,6 +44,10 @@ pub struct CheckArgs {
     /// Seconds to wait for each answer from the daemon before giving up.
     #[arg(long, value_name = "SECONDS", default_value_t = 30, value_parser = clap::value_parser!(u64).range(1..=3600))]
     timeout: u64,
+    /// A file holding the shared secret the daemon asks TCP clients for (its
+    /// `access.secret_file`); the same rules apply: 16 to 1024 bytes, not readable by others.
+    #[arg(long, value_name = "FILE")]
+    secret_file: Option<PathBuf>,
     /// Message files.
     #[arg(required = true, value_name = "FILE")]
     files: Vec<PathBuf>,
@@ -93,7 +98,12 @@ fn read_message(path: &Path) -> Result<Vec<u8>, String> {
 /// Runs `tamis check`.
 pub fn run(args: &CheckArgs) -> anyhow::Result<u8> {
     let timeout = Duration::from_secs(args.timeout);
-    let mut client = match Client::connect(&args.connect, timeout) {
+    let secret = match &args.secret_file {
+        Some(path) => Some(Secret::read(path).map_err(|e| BadInput(e.to_string()))?),
+        None => None,
+    };
+    let presented = secret.as_ref().map(Secret::bytes);
+    let mut client = match Client::connect_with_secret(&args.connect, timeout, presented) {
         Ok(client) => client,
         Err(e) if timed_out(&e) => {
             anyhow::bail!("{}", describe(&e, &args.connect, args.timeout))

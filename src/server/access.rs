@@ -225,6 +225,11 @@ impl Secret {
         Secret(bytes.to_vec())
     }
 
+    /// The secret's bytes, for a client that presents it in `HELLO` (`tamis check`).
+    pub fn bytes(&self) -> &[u8] {
+        &self.0
+    }
+
     /// Whether `presented` is the secret. The time taken depends on the secret's length
     /// only: every byte is compared, differences are folded together, and the answer is
     /// read at the end (common practice for comparing secrets).

@@ -1503,10 +1503,33 @@ mod access {
             );
             let line: serde_json::Value = serde_json::from_str(text.trim()).expect("JSON");
             assert_eq!(line["margin"].as_f64(), Some(verdict.margin));
+            // `tamis check` presents the same file's secret, and is denied without it.
+            let check = |secret: Option<&std::path::Path>| {
+                let mut cmd = std::process::Command::new(env!("CARGO_BIN_EXE_tamis"));
+                cmd.args(["check", "--connect", &addr.to_string(), "--format", "json"])
+                    .args(["--rcpt", "b@example.org"]);
+                if let Some(secret) = secret {
+                    cmd.arg("--secret-file").arg(secret);
+                }
+                cmd.arg(&file).output().expect("run tamis check")
+            };
+            let out = check(Some(&path));
+            let text = String::from_utf8_lossy(&out.stdout);
+            assert!(
+                out.status.success(),
+                "{text}{}",
+                String::from_utf8_lossy(&out.stderr)
+            );
+            let line: serde_json::Value = serde_json::from_str(text.trim()).expect("JSON");
+            assert_eq!(line["margin"].as_f64(), Some(verdict.margin));
+            let out = check(None);
+            assert!(!out.status.success());
+            let err = String::from_utf8_lossy(&out.stderr);
+            assert!(err.contains("secret"), "{err}");
         })
         .await
         .expect("task");
-        assert_eq!(protocol_errors(&metrics, "denied"), "3");
+        assert_eq!(protocol_errors(&metrics, "denied"), "4");
         assert!(running.stop().await);
     }
 
