@@ -32,6 +32,7 @@
 #![forbid(unsafe_code)]
 
 pub mod analyze;
+pub mod calendar;
 pub mod cli;
 pub mod config;
 pub mod demo;

@@ -112,24 +112,9 @@ pub fn parse_age(text: &str) -> Result<i64, String> {
         .ok_or_else(|| format!("\"{text}\" is not an age of at most 100 years"))
 }
 
-/// Days since 1970-01-01 to a civil date (proleptic Gregorian): Howard Hinnant's
-/// `civil_from_days` (from memory; checked against GNU `date` in the tests).
-fn civil(days: i64) -> (i64, i64, i64) {
-    let z = days + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z.rem_euclid(146_097);
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let day = doy - (153 * mp + 2) / 5 + 1;
-    let month = if mp < 10 { mp + 3 } else { mp - 9 };
-    let year = yoe + era * 400 + i64::from(month <= 2);
-    (year, month, day)
-}
-
 /// A time as `YYYY-MM-DD HH:MM:SS` in UTC, for people.
 pub fn utc(t: UnixTime) -> String {
-    let (y, mo, d) = civil(t.div_euclid(86_400));
+    let (y, mo, d) = crate::calendar::civil_from_days(t.div_euclid(86_400));
     let s = t.rem_euclid(86_400);
     format!(
         "{y:04}-{mo:02}-{d:02} {:02}:{:02}:{:02}",

@@ -423,7 +423,7 @@ pub(crate) fn rfc5322_date(unix: i64, offset_minutes: i32) -> String {
     let local = unix + i64::from(offset_minutes) * 60;
     let days = local.div_euclid(86_400);
     let secs = local.rem_euclid(86_400);
-    let (y, m, d) = civil_from_days(days);
+    let (y, m, d) = crate::calendar::civil_from_days(days);
     const WEEKDAYS: [&str; 7] = ["Thu", "Fri", "Sat", "Sun", "Mon", "Tue", "Wed"];
     const MONTHS: [&str; 12] = [
         "Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec",
@@ -447,20 +447,6 @@ pub(crate) fn rfc5322_date(unix: i64, offset_minutes: i32) -> String {
         off / 60,
         off % 60
     )
-}
-
-/// Proleptic Gregorian date from days since 1970-01-01 (H. Hinnant's `civil_from_days`).
-fn civil_from_days(z: i64) -> (i64, u32, u32) {
-    let z = z + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z.rem_euclid(146_097);
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let y = yoe + era * 400;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let d = (doy - (153 * mp + 2) / 5 + 1) as u32;
-    let m = if mp < 10 { mp + 3 } else { mp - 9 } as u32;
-    (if m <= 2 { y + 1 } else { y }, m, d)
 }
 
 #[cfg(test)]
