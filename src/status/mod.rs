@@ -100,7 +100,6 @@ impl StatusPage {
             window,
             model: engine.origin().to_string(),
             policy: engine.decisions().policy.clone(),
-            target: self.settings.false_positive_target,
             actions: self.token.is_some(),
             store: self
                 .store
