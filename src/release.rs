@@ -199,3 +199,112 @@ impl Deliver for SmtpDelivery {
         }
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::policy::Action;
+    use crate::store::record::{DomainOutcome, Hold, JournalEntry};
+    use crate::store::{HeldState, SqliteStore, StoreOptions};
+
+    /// A delivery that records what it was given and answers as told.
+    struct Fake {
+        fail: Option<Failure>,
+        delivered: Vec<Vec<u8>>,
+    }
+
+    impl Deliver for Fake {
+        fn deliver(&mut self, held: &HeldMessage) -> Result<String, Undelivered> {
+            if let Some(failure) = self.fail {
+                return Err(Undelivered {
+                    failure,
+                    detail: "451 try later".to_string(),
+                });
+            }
+            self.delivered.push(held.message.clone());
+            Ok("delivered".to_string())
+        }
+    }
+
+    fn held_store(dir: &std::path::Path, message: &[u8]) -> SqliteStore {
+        let store =
+            SqliteStore::open(&dir.join("s.sqlite"), StoreOptions::default()).expect("open");
+        let entry = JournalEntry {
+            verdict_id: "REL1".to_string(),
+            at: now(),
+            model: "m".to_string(),
+            margin: Some(1.0),
+            probability: None,
+            outcomes: vec![DomainOutcome {
+                domain: "example.org".to_string(),
+                recipients: 2,
+                action: Action::Quarantine,
+                enforced: Action::Quarantine,
+            }],
+            size: message.len() as u64,
+            sender_domain: None,
+            reasons: vec![],
+            scanned: true,
+            subject: None,
+            message_key: None,
+        };
+        let recipients = vec!["a@example.org".to_string(), "b@example.org".to_string()];
+        store
+            .hold(
+                &entry,
+                &Hold {
+                    sender: "s@example.net",
+                    recipients: &recipients,
+                    message,
+                },
+            )
+            .expect("hold");
+        store
+    }
+
+    #[test]
+    fn a_failed_delivery_leaves_the_message_held_and_a_good_one_releases_it_once() {
+        let dir = tempfile::tempdir().expect("temp dir");
+        let message = b"Subject: hi\r\n\r\nbody\r\n".to_vec();
+        let store = held_store(dir.path(), &message);
+        let mut vectors = 0;
+        let mut features = |_: &[u8]| {
+            vectors += 1;
+            None
+        };
+
+        let mut failing = Fake {
+            fail: Some(Failure::Transient),
+            delivered: Vec::new(),
+        };
+        let outcome = release(&store, "REL1", &mut failing, &mut features).expect("store");
+        assert!(
+            matches!(&outcome, Outcome::Failed(u) if u.failure == Failure::Transient),
+            "{outcome:?}"
+        );
+        let state = store
+            .get_held("REL1")
+            .expect("read")
+            .map(|h| h.summary.state);
+        assert_eq!(state, Some(HeldState::Held), "back to held, not lost");
+
+        let mut good = Fake {
+            fail: None,
+            delivered: Vec::new(),
+        };
+        let outcome = release(&store, "REL1", &mut good, &mut features).expect("store");
+        assert!(
+            matches!(outcome, Outcome::Released { recipients: 2, .. }),
+            "{outcome:?}"
+        );
+        let again = release(&store, "REL1", &mut good, &mut features).expect("store");
+        assert!(matches!(again, Outcome::AlreadyReleased), "{again:?}");
+        let missing = release(&store, "NOPE", &mut good, &mut features).expect("store");
+        assert!(matches!(missing, Outcome::NotFound), "{missing:?}");
+        assert_eq!(good.delivered, vec![message], "delivered once, as held");
+        assert_eq!(
+            vectors, 1,
+            "the vector is taken for the delivered release only"
+        );
+    }
+}
