@@ -817,10 +817,6 @@ impl Default for ReleaseConfig {
     }
 }
 
-/// Default false-positive target shown on the status page: one legitimate message in a
-/// thousand held back.
-pub const DEFAULT_FALSE_POSITIVE_TARGET: f64 = 0.001;
-
 /// The status page (`src/status/`), served on the metrics listener: read-only unless a
 /// token file is set.
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -831,9 +827,6 @@ pub struct StatusConfig {
     /// `access.secret_file`: a regular file other users cannot read, 16 to 1024 bytes.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub token_file: Option<PathBuf>,
-    /// The false-positive rate each domain is measured against on the page, above 0 and
-    /// below 1. Default 0.001.
-    pub false_positive_target: f64,
     /// Host names the page answers to besides IP addresses and `localhost` (a request
     /// naming any other host is refused, so a web page cannot reach the loopback page
     /// through a DNS name it controls). Default none.
@@ -853,7 +846,6 @@ impl Default for StatusConfig {
     fn default() -> StatusConfig {
         StatusConfig {
             token_file: None,
-            false_positive_target: DEFAULT_FALSE_POSITIVE_TARGET,
             host_names: Vec::new(),
             audit_size: 20,
             audit_seed: 1,
@@ -904,12 +896,6 @@ impl Check for StatusConfig {
                 "status.token_file is empty; give the token file's path, or remove the key to keep the page read-only"
                     .to_string(),
             );
-        }
-        let target = self.false_positive_target;
-        if !(target > 0.0 && target < 1.0) {
-            return Err(format!(
-                "status.false_positive_target is {target}; give a rate above 0 and below 1, e.g. 0.001 for one in a thousand"
-            ));
         }
         for name in &self.host_names {
             crate::policy::domain::validate(name).map_err(|reason| {

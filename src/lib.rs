@@ -45,6 +45,7 @@ pub mod metrics;
 pub mod model;
 pub mod policy;
 pub mod proto;
+pub mod release;
 pub mod rng;
 pub mod server;
 pub mod smtp;

@@ -23,11 +23,10 @@ use super::ops::{
 use super::{EXIT_FAILURE, EXIT_OK, EXIT_PARTIAL};
 use crate::config::Config;
 use crate::policy::Action;
-use crate::smtp::{Connection, Envelope, Failure, SmtpError};
+use crate::release::{Deliver, Outcome, SmtpDelivery, Undelivered};
+use crate::smtp::Failure;
 use crate::store::record::now;
-use crate::store::{
-    Claim, HeldFilter, HeldMessage, HeldState, HeldSummary, ReleaseOutcome, SqliteStore, Store,
-};
+use crate::store::{HeldFilter, HeldMessage, HeldState, HeldSummary, SqliteStore, Store};
 
 /// Arguments of `tamis held`.
 #[derive(clap::Args, Debug)]
@@ -580,7 +579,7 @@ fn write_stdout(bytes: &[u8]) -> anyhow::Result<()> {
 
 /// Where released mail goes.
 enum Target<'a> {
-    Smtp { next_hop: String, helo_name: String },
+    Smtp(Box<SmtpDelivery>),
     File(&'a Path),
     Stdout,
     Folder(&'a Path),
@@ -589,10 +588,42 @@ enum Target<'a> {
 impl Target<'_> {
     fn describe(&self) -> String {
         match self {
-            Target::Smtp { next_hop, .. } => format!("re-injected to {next_hop}"),
+            Target::Smtp(smtp) => format!("re-injected to {}", smtp.next_hop()),
             Target::File(p) => format!("written to {}", p.display()),
             Target::Stdout => "written to standard output".to_string(),
             Target::Folder(p) => format!("written into {}", p.display()),
+        }
+    }
+
+    fn close(self) {
+        if let Target::Smtp(smtp) = self {
+            smtp.close();
+        }
+    }
+}
+
+impl Deliver for Target<'_> {
+    fn deliver(&mut self, held: &HeldMessage) -> Result<String, Undelivered> {
+        let id = &held.summary.entry.verdict_id;
+        let written = match self {
+            Target::File(path) => write_private(path, &held.message),
+            Target::Folder(folder) => {
+                write_private(&folder.join(format!("{id}.eml")), &held.message)
+            }
+            Target::Stdout => write_stdout(&held.message),
+            Target::Smtp(smtp) => {
+                return smtp.deliver(held).map_err(|u| Undelivered {
+                    detail: with_advice(&u),
+                    ..u
+                });
+            }
+        };
+        match written {
+            Ok(()) => Ok(self.describe()),
+            Err(e) => Err(Undelivered {
+                failure: Failure::Permanent,
+                detail: format!("{e:#}"),
+            }),
         }
     }
 }
@@ -616,15 +647,6 @@ fn failure_name(f: Failure) -> &'static str {
         Failure::Permanent => "permanent",
         Failure::Connection => "connection",
     }
-}
-
-/// This machine's host name, for `EHLO` when none is configured.
-fn host_name() -> String {
-    std::fs::read_to_string("/proc/sys/kernel/hostname")
-        .ok()
-        .map(|s| s.trim().to_string())
-        .filter(|s| crate::smtp::client::check_helo_name(s).is_ok())
-        .unwrap_or_else(|| "localhost".to_string())
 }
 
 fn release_target<'a>(config: &Config, args: &'a ReleaseArgs) -> anyhow::Result<Target<'a>> {
@@ -679,104 +701,28 @@ fn release_target<'a>(config: &Config, args: &'a ReleaseArgs) -> anyhow::Result<
             .into());
         }
     };
-    let helo_name = config.release.helo_name.clone().unwrap_or_else(host_name);
-    Ok(Target::Smtp {
-        next_hop,
-        helo_name,
-    })
+    let helo_name = config
+        .release
+        .helo_name
+        .clone()
+        .unwrap_or_else(crate::release::host_name);
+    Ok(Target::Smtp(Box::new(SmtpDelivery::new(
+        &next_hop,
+        &helo_name,
+        config.release.timeouts(),
+    ))))
 }
 
-/// Re-injects or writes one claimed message; the text to show on success.
-struct Deliverer<'a> {
-    target: Target<'a>,
-    config: &'a Config,
-    runtime: Option<tokio::runtime::Runtime>,
-    connection: Option<Connection<tokio::net::TcpStream>>,
-}
-
-enum Delivery {
-    Done(String),
-    Failed(Failure, String),
-}
-
-impl Deliverer<'_> {
-    fn deliver(&mut self, held: &HeldMessage) -> Delivery {
-        let id = &held.summary.entry.verdict_id;
-        let written = match &self.target {
-            Target::File(path) => write_private(path, &held.message),
-            Target::Folder(folder) => {
-                write_private(&folder.join(format!("{id}.eml")), &held.message)
-            }
-            Target::Stdout => write_stdout(&held.message),
-            Target::Smtp { .. } => return self.send(held),
-        };
-        match written {
-            Ok(()) => Delivery::Done(self.target.describe()),
-            Err(e) => Delivery::Failed(Failure::Permanent, format!("{e:#}")),
-        }
-    }
-
-    fn send(&mut self, held: &HeldMessage) -> Delivery {
-        let Target::Smtp {
-            next_hop,
-            helo_name,
-        } = &self.target
-        else {
-            return Delivery::Failed(Failure::Permanent, "not an SMTP release".to_string());
-        };
-        let runtime = match &self.runtime {
-            Some(r) => r,
-            None => match tokio::runtime::Builder::new_current_thread()
-                .enable_all()
-                .build()
-            {
-                Ok(r) => self.runtime.insert(r),
-                Err(e) => {
-                    return Delivery::Failed(
-                        Failure::Connection,
-                        format!("cannot start the network runtime: {e}"),
-                    );
-                }
-            },
-        };
-        if self.connection.as_ref().is_some_and(|c| !c.is_usable()) {
-            self.connection = None;
-        }
-        let timeouts = self.config.release.timeouts();
-        let connection = match &mut self.connection {
-            Some(c) => c,
-            None => match runtime.block_on(Connection::connect(next_hop, helo_name, timeouts)) {
-                Ok(c) => self.connection.insert(c),
-                Err(e) => return Delivery::Failed(e.failure(), e.to_string()),
-            },
-        };
-        let envelope = Envelope {
-            sender: &held.summary.sender,
-            recipients: &held.summary.recipients,
-        };
-        match runtime.block_on(connection.send(&envelope, &held.message)) {
-            Ok(reply) => Delivery::Done(format!("{} ({reply})", self.target.describe())),
-            Err(e) => Delivery::Failed(e.failure(), describe_failure(&e)),
-        }
-    }
-
-    fn close(mut self) {
-        if let (Some(runtime), Some(connection)) = (self.runtime.take(), self.connection.take()) {
-            // The messages are delivered; a failed goodbye changes nothing.
-            let _ = runtime.block_on(connection.quit());
-        }
-    }
-}
-
-fn describe_failure(e: &SmtpError) -> String {
-    let advice = match e.failure() {
+/// An SMTP failure with what to do about it.
+fn with_advice(u: &Undelivered) -> String {
+    let advice = match u.failure {
         Failure::Transient => "the next hop refused for now; try again later",
         Failure::Permanent => {
             "the next hop will refuse this message again as it is; release it with --to FILE and deliver it by hand"
         }
         Failure::Connection => "check that the next hop is up, then try again",
     };
-    format!("{e}; {advice}")
+    format!("{}; {advice}", u.detail)
 }
 
 /// Writes held mail to a file only its owner can read, atomically.
@@ -791,15 +737,10 @@ fn release(
     args: &ReleaseArgs,
     format: Format,
 ) -> anyhow::Result<u8> {
-    let target = release_target(config, args)?;
+    let mut target = release_target(config, args)?;
     let to_stdout = matches!(target, Target::Stdout);
     let mut vectorizer = Vectorizer::for_config(config);
-    let mut deliverer = Deliverer {
-        target,
-        config,
-        runtime: None,
-        connection: None,
-    };
+    let mut features = |raw: &[u8]| vectorizer.vector(raw);
     let mut results = Vec::new();
     // Once the next hop cannot be reached, the other messages are left held untried
     // rather than each waiting for its own connection timeout.
@@ -819,65 +760,45 @@ fn release(
             ));
             continue;
         }
-        let held = match store.claim_release(id)? {
-            Claim::Won(held) => held,
-            Claim::NotFound => {
-                results.push(result(
-                    "not-found",
-                    None,
-                    "no held message has this verdict id (never held, deleted or purged)"
-                        .to_string(),
-                ));
-                continue;
+        match crate::release::release(store, id, &mut target, &mut features)? {
+            Outcome::Released { detail, .. } => results.push(result("released", None, detail)),
+            Outcome::Unrecorded { detail, error } => {
+                // Delivered, but not recorded: say exactly what state it is in.
+                let done = format!(
+                    "{detail}, but the store could not record the release ({error}); the message stays marked as being released, and `held unclaim` would make it releasable (and deliverable) again"
+                );
+                results.push(result("released", None, done));
+                report(&results, format, to_stdout)?;
+                return Ok(EXIT_FAILURE);
             }
-            Claim::AlreadyReleased => {
-                results.push(result(
-                    "already-released",
-                    None,
-                    "already released; nothing done".to_string(),
-                ));
-                continue;
-            }
-            Claim::InProgress => {
-                results.push(result(
-                    "in-progress",
-                    None,
-                    "another release of this message is in progress; nothing done".to_string(),
-                ));
-                continue;
-            }
-        };
-        match deliverer.deliver(&held) {
-            Delivery::Done(detail) => {
-                let outcome = ReleaseOutcome::Delivered {
-                    at: now(),
-                    features: vectorizer.vector(&held.message),
-                };
-                if let Err(e) = store.finish_release(id, &outcome) {
-                    // Delivered, but not recorded: say exactly what state it is in.
-                    let done = format!(
-                        "{detail}, but the store could not record the release ({e}); the message stays marked as being released, and `held unclaim` would make it releasable (and deliverable) again"
-                    );
-                    results.push(result("released", None, done));
-                    report(&results, format, to_stdout)?;
-                    return Ok(EXIT_FAILURE);
-                }
-                results.push(result("released", None, detail));
-            }
-            Delivery::Failed(failure, detail) => {
-                store.finish_release(id, &ReleaseOutcome::Failed)?;
-                if failure == Failure::Connection {
-                    unreachable = Some(detail.clone());
+            Outcome::Failed(u) => {
+                if u.failure == Failure::Connection {
+                    unreachable = Some(u.detail.clone());
                 }
                 results.push(result(
                     "failed",
-                    Some(failure_name(failure)),
-                    format!("NOT released, still held: {detail}"),
+                    Some(failure_name(u.failure)),
+                    format!("NOT released, still held: {}", u.detail),
                 ));
             }
+            Outcome::NotFound => results.push(result(
+                "not-found",
+                None,
+                "no held message has this verdict id (never held, deleted or purged)".to_string(),
+            )),
+            Outcome::AlreadyReleased => results.push(result(
+                "already-released",
+                None,
+                "already released; nothing done".to_string(),
+            )),
+            Outcome::InProgress => results.push(result(
+                "in-progress",
+                None,
+                "another release of this message is in progress; nothing done".to_string(),
+            )),
         }
     }
-    deliverer.close();
+    target.close();
     report(&results, format, to_stdout)?;
     let failed = results
         .iter()

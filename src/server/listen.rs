@@ -32,6 +32,7 @@ use crate::config::Config;
 use crate::metrics::Metrics;
 use crate::proto::FaultCode;
 use crate::status::StatusPage;
+use crate::status::actions::StoreOperations;
 
 /// A running daemon: its bound addresses and the means to stop it.
 pub struct Running {
@@ -156,14 +157,20 @@ pub async fn start_with(
         )),
         None => None,
     };
-    let page = Arc::new(
-        StatusPage::new(
-            &config.status,
-            engine.clone(),
-            keeping.as_ref().map(|k| Arc::clone(k.store())),
-        )
-        .map_err(|e| std::io::Error::other(e.to_string()))?,
-    );
+    let page = StatusPage::new(
+        &config.status,
+        engine.clone(),
+        keeping.as_ref().map(|k| Arc::clone(k.store())),
+    )
+    .map_err(|e| std::io::Error::other(e.to_string()))?;
+    // Releases from the page go to `[release] next_hop`, as `tamis held release` does.
+    let page = Arc::new(match &keeping {
+        Some(k) if config.release.next_hop.is_some() => page.with_operations(Arc::new(
+            StoreOperations::new(Arc::clone(k.store()))
+                .with_release(&config.release, engine.clone()),
+        )),
+        _ => page,
+    });
     let base = Context {
         shutdown: shutdown.clone(),
         keeping: keeping.clone(),

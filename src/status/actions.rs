@@ -5,11 +5,16 @@
 //! one of a fixed set of verbs, parsed from at most [`MAX_FIELDS`] form fields; anything
 //! else is refused before the store is touched. [`StoreOperations`] records reports in the
 //! store (a release counts as a legitimate report there, done by the store itself when a
-//! release finishes); releasing needs the SMTP re-injection of a configured next hop and
-//! answers [`ActionError::ReleaseUnavailable`] until one is wired in.
+//! release finishes); it releases through [`crate::release::release`], the routine
+//! `tamis held release` uses, so of two releases of one message from the page and the
+//! command at once exactly one re-injects it. Without a `[release] next_hop` a release
+//! answers [`ActionError::ReleaseUnavailable`].
 
 use std::sync::Arc;
 
+use crate::config::ReleaseConfig;
+use crate::release::{Outcome, SmtpDelivery};
+use crate::server::engine::SharedEngine;
 use crate::store::{NewReport, ReportKind, ReportReceipt, ReportSource, Store, StoreError};
 
 /// Most form fields read from an action request.
@@ -45,9 +50,17 @@ pub struct Released {
 pub enum ActionError {
     /// No SMTP next hop is configured for releases.
     #[error(
-        "not available: no release next hop configured; release held mail with the `tamis held` command, or configure the release next hop once this build supports it"
+        "not available: no release next hop configured; set `next_hop` in the configuration's [release] table, or release with `tamis held release --to FILE`"
     )]
     ReleaseUnavailable,
+    /// The next hop did not take the message; it is held again.
+    #[error("verdict {0} was NOT released, still held: {1}")]
+    Undelivered(String, String),
+    /// Delivered, but the store could not record the release.
+    #[error(
+        "verdict {0} was delivered, but the store could not record the release ({1}); it stays marked as being released, and `tamis held unclaim` would make it releasable (and deliverable) again"
+    )]
+    Unrecorded(String, StoreError),
     /// Nothing is held under the verdict id.
     #[error("nothing is held under verdict {0}")]
     NotHeld(String),
@@ -62,15 +75,29 @@ pub enum ActionError {
     Store(#[from] StoreError),
 }
 
-/// The operations of a store without a release next hop.
+/// The operations of a store: reports, and releases once a next hop is given.
 pub struct StoreOperations {
     store: Arc<dyn Store>,
+    release: Option<(ReleaseConfig, SharedEngine)>,
 }
 
 impl StoreOperations {
-    /// Operations on `store`.
+    /// Operations on `store`, without releases.
     pub fn new(store: Arc<dyn Store>) -> StoreOperations {
-        StoreOperations { store }
+        StoreOperations {
+            store,
+            release: None,
+        }
+    }
+
+    /// The same operations releasing over SMTP to `release.next_hop` (none: releases
+    /// stay unavailable); the engine's model gives the feature vector a release records.
+    pub fn with_release(mut self, release: &ReleaseConfig, engine: SharedEngine) -> Self {
+        self.release = release
+            .next_hop
+            .is_some()
+            .then(|| (release.clone(), engine));
+        self
     }
 }
 
@@ -93,8 +120,36 @@ impl Operations for StoreOperations {
         Ok(self.store.report(&report)?)
     }
 
-    fn release(&self, _verdict_id: &str) -> Result<Released, ActionError> {
-        Err(ActionError::ReleaseUnavailable)
+    fn release(&self, verdict_id: &str) -> Result<Released, ActionError> {
+        let Some((config, engine)) = &self.release else {
+            return Err(ActionError::ReleaseUnavailable);
+        };
+        let Some(mut delivery) = SmtpDelivery::configured(config) else {
+            return Err(ActionError::ReleaseUnavailable);
+        };
+        let mut analyzer =
+            crate::analyze::Analyzer::new(engine.current().model().spec().clone()).ok();
+        let mut features = |raw: &[u8]| {
+            analyzer
+                .as_mut()
+                .and_then(|a| a.vectorize(raw).ok().cloned())
+        };
+        let outcome = crate::release::release(
+            self.store.as_ref(),
+            verdict_id,
+            &mut delivery,
+            &mut features,
+        );
+        delivery.close();
+        let id = verdict_id.to_string();
+        match outcome? {
+            Outcome::Released { recipients, .. } => Ok(Released { recipients }),
+            Outcome::Unrecorded { error, .. } => Err(ActionError::Unrecorded(id, error)),
+            Outcome::Failed(u) => Err(ActionError::Undelivered(id, u.detail)),
+            Outcome::NotFound => Err(ActionError::NotHeld(id)),
+            Outcome::AlreadyReleased => Err(ActionError::AlreadyReleased(id)),
+            Outcome::InProgress => Err(ActionError::InProgress(id)),
+        }
     }
 }
 

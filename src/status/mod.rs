@@ -100,7 +100,6 @@ impl StatusPage {
             window,
             model: engine.origin().to_string(),
             policy: engine.decisions().policy.clone(),
-            target: self.settings.false_positive_target,
             actions: self.token.is_some(),
             store: self
                 .store
@@ -298,7 +297,8 @@ fn action_failed(context: &Context, error: &ActionError, back: Option<&str>) -> 
         ActionError::ReleaseUnavailable => 503,
         ActionError::NotHeld(_) => 404,
         ActionError::InProgress(_) | ActionError::AlreadyReleased(_) => 409,
-        ActionError::Store(_) => 500,
+        ActionError::Undelivered(..) => 502,
+        ActionError::Store(_) | ActionError::Unrecorded(..) => 500,
     };
     Response::html(
         code,

@@ -114,12 +114,18 @@ pub struct Context {
     pub model: String,
     /// The policy in force.
     pub policy: Policy,
-    /// The false-positive target each domain is measured against.
-    pub target: f64,
     /// Whether actions can be taken (a token is configured).
     pub actions: bool,
     /// The store, for the footer; `None` when the daemon runs without one.
     pub store: Option<String>,
+}
+
+impl Context {
+    /// The false-positive target `domain` is measured against: its policy section's
+    /// `target_fpr`, else the policy-wide one (the same target `tamis figures` uses).
+    pub fn target_of(&self, domain: &str) -> f64 {
+        self.policy.target_fpr_of_domain(domain)
+    }
 }
 
 /// One domain's line on the overview.
@@ -129,6 +135,8 @@ pub struct DomainLine {
     pub figures: DomainFigures,
     /// Messages held for it now.
     pub held: u64,
+    /// Its false-positive target.
+    pub target: f64,
     /// Where it stands against the target.
     pub check: TargetCheck,
     /// Its policy section.
@@ -170,6 +178,8 @@ pub struct DomainView {
     pub domain: String,
     /// Its figures over the window.
     pub figures: DomainFigures,
+    /// Its false-positive target.
+    pub target: f64,
     /// Where it stands against the target.
     pub check: TargetCheck,
     /// Its policy section.
@@ -243,8 +253,10 @@ pub fn overview(store: &dyn Store, context: Context) -> Result<Overview, StoreEr
 }
 
 fn line(context: &Context, figures: DomainFigures, held: u64) -> DomainLine {
+    let target = context.target_of(&figures.domain);
     DomainLine {
-        check: figures.against(context.target),
+        target,
+        check: figures.against(target),
         section: Section::of(&context.policy, &figures.domain),
         figures,
         held,
@@ -329,8 +341,10 @@ pub fn domain(
             Ok((a, line))
         })
         .collect::<Result<Vec<_>, StoreError>>()?;
+    let target = context.target_of(domain);
     Ok(DomainView {
-        check: figures.against(context.target),
+        target,
+        check: figures.against(target),
         volume: store.volume(Some(domain), &buckets)?,
         margins: store.reported_margins(domain, buckets.since, &bins_for(&section))?,
         domain: domain.to_string(),

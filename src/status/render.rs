@@ -192,9 +192,9 @@ fn foot(h: &mut Html, context: &Context) {
             h.raw("no store");
         }
     }
-    h.raw(" · false-positive target ")
-        .text(&percent(context.target))
-        .raw(" · bounds are one-sided 95% Clopper–Pearson · ");
+    h.raw(" · false-positive target per domain: ")
+        .text(&percent(context.policy.target_fpr()))
+        .raw(" unless its section sets target_fpr · bounds are one-sided 95% Clopper–Pearson · ");
     if context.actions {
         h.raw("actions need the token");
     } else {
@@ -298,9 +298,7 @@ pub fn overview(o: &Overview) -> String {
     if o.domains.is_empty() {
         h.raw("<p class=\"muted\" data-k=\"no-domains\">No verdicts yet in this window, and no domain has its own policy section.</p>");
     } else {
-        h.raw("<table><thead><tr><th>recipient domain</th><th class=\"n\">messages</th><th class=\"n\">accept</th><th class=\"n\">tag</th><th class=\"n\">would hold</th><th class=\"n\">held</th><th class=\"n\">held now</th><th class=\"n\">junk rep.</th><th class=\"n\">legit. rep.</th><th class=\"n\">releases</th><th class=\"n\">false pos.</th><th class=\"n\">95% bound</th><th>against ")
-            .text(&percent(c.target))
-            .raw("</th><th>thresholds</th></tr></thead><tbody>");
+        h.raw("<table><thead><tr><th>recipient domain</th><th class=\"n\">messages</th><th class=\"n\">accept</th><th class=\"n\">tag</th><th class=\"n\">would hold</th><th class=\"n\">held</th><th class=\"n\">held now</th><th class=\"n\">junk rep.</th><th class=\"n\">legit. rep.</th><th class=\"n\">releases</th><th class=\"n\">false pos.</th><th class=\"n\">95% bound</th><th class=\"n\">target</th><th>against it</th><th>thresholds</th></tr></thead><tbody>");
         for line in &o.domains {
             overview_row(&mut h, line, c.window);
         }
@@ -335,7 +333,9 @@ fn overview_row(h: &mut Html, line: &DomainLine, window: Window) {
     cell(h, "reports-legitimate", f.reports_not_junk);
     cell(h, "releases", f.releases);
     rate_cells(h, f);
-    h.raw("<td>");
+    h.raw("<td class=\"n\" data-k=\"target\">")
+        .text(&percent(line.target))
+        .raw("</td><td>");
     check_badge(h, line.check);
     h.raw("</td><td class=\"env\">")
         .text(&thresholds_text(&line.section))
@@ -370,13 +370,13 @@ pub fn domain(v: &DomainView) -> String {
         .text(&count(f.false_positives.of))
         .raw(" legitimate · at most <b data-k=\"fp-bound\">")
         .text(&percent(f.false_positives.upper))
-        .raw("</b> (95%) · target ")
-        .text(&percent(c.target))
-        .raw("</span> ");
+        .raw("</b> (95%) · target <b data-k=\"target\">")
+        .text(&percent(v.target))
+        .raw("</b></span> ");
     check_badge(&mut h, v.check);
     h.append(svg::interval(
         &f.false_positives,
-        c.target,
+        v.target,
         v.check,
         "false-positive rate, its 95% interval (bar) and the target (dashed), log scale",
     ));

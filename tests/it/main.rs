@@ -15,6 +15,7 @@ pub mod invariance;
 mod mime;
 mod murmur;
 mod operator;
+mod operator_loop;
 mod proto_vectors;
 mod python;
 mod scan_bypass;

@@ -757,29 +757,29 @@ fn the_audit_sample_is_repeatable_and_answers_feed_the_audit_rate() {
 // --- figures -------------------------------------------------------------------------
 
 /// One message of the seeded store, with what the test knows about it.
-struct Known {
-    domain: &'static str,
-    in_window: bool,
-    action: Action,
-    enforced: Action,
+pub(crate) struct Known {
+    pub domain: &'static str,
+    pub in_window: bool,
+    pub action: Action,
+    pub enforced: Action,
     /// (kind, source) of each matched report, in the order made.
-    reports: Vec<(ReportKind, ReportSource)>,
+    pub reports: Vec<(ReportKind, ReportSource)>,
 }
 
 #[derive(Debug, Default, PartialEq)]
-struct Hand {
-    by_action: [u64; 4],
-    would_quarantine: u64,
-    reports_junk: u64,
-    reports_legitimate: u64,
-    releases: u64,
-    unmatched: u64,
-    legitimate: u64,
-    false_positives: u64,
-    junk: u64,
-    caught: u64,
-    reviewed: u64,
-    audit_legitimate: u64,
+pub(crate) struct Hand {
+    pub by_action: [u64; 4],
+    pub would_quarantine: u64,
+    pub reports_junk: u64,
+    pub reports_legitimate: u64,
+    pub releases: u64,
+    pub unmatched: u64,
+    pub legitimate: u64,
+    pub false_positives: u64,
+    pub junk: u64,
+    pub caught: u64,
+    pub reviewed: u64,
+    pub audit_legitimate: u64,
 }
 
 fn slot(a: Action) -> usize {
@@ -792,7 +792,7 @@ fn slot(a: Action) -> usize {
 }
 
 /// Counts by hand, following the definitions of `src/store/figures.rs` one by one.
-fn hand_count(known: &[Known], domain: &str, unmatched: u64) -> Hand {
+pub(crate) fn hand_count(known: &[Known], domain: &str, unmatched: u64) -> Hand {
     let mut h = Hand {
         unmatched,
         ..Hand::default()
@@ -850,7 +850,7 @@ fn hand_count(known: &[Known], domain: &str, unmatched: u64) -> Hand {
     h
 }
 
-fn from_json(d: &Value) -> Hand {
+pub(crate) fn from_json(d: &Value) -> Hand {
     let n = |v: &Value| v.as_u64().unwrap_or(u64::MAX);
     let a = &d["by_action"];
     Hand {

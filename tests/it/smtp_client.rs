@@ -63,7 +63,7 @@ async def main():
 asyncio.run(main())
 "#;
 
-struct Sink {
+pub(crate) struct Sink {
     child: Child,
     stdin: Option<ChildStdin>,
     port: u16,
@@ -71,7 +71,7 @@ struct Sink {
 }
 
 impl Sink {
-    fn start(dir: &Path, mode: &str) -> Sink {
+    pub(crate) fn start(dir: &Path, mode: &str) -> Sink {
         let out = dir.join(format!("sink-{mode}"));
         std::fs::create_dir_all(&out).expect("sink folder");
         let mut child = Command::new(python::interpreter())
@@ -101,12 +101,12 @@ impl Sink {
         }
     }
 
-    fn address(&self) -> String {
+    pub(crate) fn address(&self) -> String {
         format!("127.0.0.1:{}", self.port)
     }
 
     /// The messages received so far, in order: (content, envelope and options).
-    fn received(&self) -> Vec<(Vec<u8>, Value)> {
+    pub(crate) fn received(&self) -> Vec<(Vec<u8>, Value)> {
         let mut out = Vec::new();
         for n in 1.. {
             let eml = self.dir.join(format!("{n}.eml"));
@@ -141,7 +141,7 @@ fn fixture(next_hop: &str) -> Fixture {
 /// A message that exercises the transparency rules: lines that begin with a dot, a line
 /// holding only a dot (which would end the data if sent as it is), a line of two dots,
 /// and 8-bit UTF-8 text (sent with BODY=8BITMIME).
-fn tricky_message(id: &str) -> Vec<u8> {
+pub(crate) fn tricky_message(id: &str) -> Vec<u8> {
     format!(
         "From: Ops Desk <desk@prize.test>\r\nTo: ann@example.org\r\nSubject: Held {id}\r\nMessage-ID: <{id}@prize.test>\r\nMIME-Version: 1.0\r\nContent-Type: text/plain; charset=utf-8\r\nContent-Transfer-Encoding: 8bit\r\n\r\nFirst line.\r\n.\r\n..\r\n.leading dot\r\n. spaced\r\nCafé crème, naïve façade.\r\n\r\n.\r\nLast line.\r\n"
     )
