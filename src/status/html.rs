@@ -174,27 +174,12 @@ pub fn form_pairs(text: &str, max: usize) -> Vec<(String, String)> {
 pub fn utc(time: i64) -> String {
     let days = time.div_euclid(86_400);
     let seconds = time.rem_euclid(86_400);
-    let (y, m, d) = civil_from_days(days);
+    let (y, m, d) = crate::calendar::civil_from_days(days);
     format!(
         "{y:04}-{m:02}-{d:02} {:02}:{:02}",
         seconds / 3600,
         (seconds % 3600) / 60
     )
-}
-
-/// Proleptic Gregorian date from days since 1970-01-01 (H. Hinnant, "chrono-Compatible
-/// Low-Level Date Algorithms", `civil_from_days`).
-fn civil_from_days(z: i64) -> (i64, u32, u32) {
-    let z = z + 719_468;
-    let era = z.div_euclid(146_097);
-    let doe = z.rem_euclid(146_097);
-    let yoe = (doe - doe / 1460 + doe / 36_524 - doe / 146_096) / 365;
-    let y = yoe + era * 400;
-    let doy = doe - (365 * yoe + yoe / 4 - yoe / 100);
-    let mp = (5 * doy + 2) / 153;
-    let d = (doy - (153 * mp + 2) / 5 + 1) as u32;
-    let m = if mp < 10 { mp + 3 } else { mp - 9 } as u32;
-    (if m <= 2 { y + 1 } else { y }, m, d)
 }
 
 /// A count with thin spaces between groups of three digits, as the page shows counts.
