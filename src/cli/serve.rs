@@ -151,7 +151,9 @@ pub fn run(args: &ServeArgs) -> anyhow::Result<u8> {
             eprintln!("tamis: relay protocol on unix {}", path.display());
         }
         if let Some(addr) = running.status {
-            eprintln!("tamis: metrics on http://{addr}/metrics (health: /healthz, /readyz)");
+            eprintln!(
+                "tamis: status page on http://{addr}/, metrics on http://{addr}/metrics (health: /healthz, /readyz)"
+            );
         }
         let mut terminate = signal(SignalKind::terminate())?;
         let mut interrupt = signal(SignalKind::interrupt())?;

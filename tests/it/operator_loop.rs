@@ -84,27 +84,8 @@ fn get(addr: SocketAddr, path: &str) -> String {
         .unwrap_or_default()
 }
 
-/// The text of the element carrying `data-k="KEY"` within `html`.
-fn figure(html: &str, key: &str) -> String {
-    let marker = format!("data-k=\"{key}\"");
-    let at = html
-        .find(&marker)
-        .unwrap_or_else(|| panic!("no {key} in the page"));
-    let rest = &html[at..];
-    let start = rest.find('>').map_or(0, |p| p + 1);
-    let end = rest[start..].find('<').map_or(rest.len(), |p| start + p);
-    rest[start..end].replace('\u{202f}', "").trim().to_string()
-}
-
-/// The overview's table row of `domain`.
-fn row<'a>(html: &'a str, domain: &str) -> &'a str {
-    let marker = format!("<tr data-domain=\"{domain}\">");
-    let at = html
-        .find(&marker)
-        .unwrap_or_else(|| panic!("no row for {domain}"));
-    let rest = &html[at..];
-    &rest[..rest.find("</tr>").unwrap_or(rest.len())]
-}
+// The page's figures and rows are read as the status-page tests read them.
+use crate::status_page::{figure, row};
 
 fn report(fx: &Fixture, kind: &str, by: &str, domain: &str, id: &str) -> Value {
     let cfg = fx.config_arg();

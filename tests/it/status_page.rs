@@ -423,7 +423,7 @@ fn validate(docs: &[(&str, &str)]) -> String {
 
 /// The text of the element marked `data-k="key"` after `from` in `dom` (thin spaces
 /// between digit groups removed).
-fn figure(dom: &str, key: &str) -> String {
+pub(crate) fn figure(dom: &str, key: &str) -> String {
     let marker = format!("data-k=\"{key}\"");
     let at = dom
         .find(&marker)
@@ -435,7 +435,7 @@ fn figure(dom: &str, key: &str) -> String {
 }
 
 /// The part of `dom` inside the table row of `domain` on the overview.
-fn row<'a>(dom: &'a str, domain: &str) -> &'a str {
+pub(crate) fn row<'a>(dom: &'a str, domain: &str) -> &'a str {
     let marker = format!("<tr data-domain=\"{domain}\">");
     let at = dom
         .find(&marker)
