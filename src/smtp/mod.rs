@@ -12,7 +12,9 @@
 //! message (see [`crate::logsafe`]).
 
 pub mod client;
+pub mod transaction;
 
 pub use client::{
     Connection, Envelope, Extensions, Failure, Reply, SmtpError, Stage, Timeouts, encode_data,
 };
+pub use transaction::{Answer, BodyType, Handler, Transaction};
